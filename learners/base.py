@@ -1,0 +1,287 @@
+"""The one protocol every learner follows, and what a learner reports about its own ceiling.
+
+A learner predicts one item, learns one labelled item, and says how many mistakes it can make at
+most if the stream satisfies its assumption: its *ceiling*. The counts it keeps:
+
+- ``examples``: labelled items it has learned from;
+- ``mistakes``: labelled items on which its hypothesis *at label time* was wrong;
+- ``updates``: labelled items that changed its hypothesis by its own update rule (equal to
+  ``mistakes`` for purely mistake-driven learners; larger for margin learners that also update on
+  correct but unconfident answers; for halving, the mistakes, although it prunes on every label).
+
+The ceiling bounds one of ``updates`` or ``mistakes``, and says which in :attr:`Ceiling.counts`.
+
+A subclass implements ``_predict(enc)``, ``_learn(enc, y) -> (wrong, updated)``, ``ceiling()``,
+``_learned_state()`` and ``_restore(learned)``; the base class owns validation, the counters and the
+state envelope, so adding a learner is one module and one line in the registry.
+"""
+
+from __future__ import annotations
+
+import math
+from abc import ABC, abstractmethod
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any, ClassVar, Literal
+
+import numpy as np
+
+from learners.errors import LabelError, ParameterError, StateError, shown
+from learners.features import Encoded, FeatureSpace, Item
+
+STATE_VERSION = 1
+
+Standing = Literal["within", "near", "exceeded", "contradicted"]
+
+
+@dataclass(frozen=True)
+class Ceiling:
+    """The most ``counts`` a learner can reach while the stream satisfies ``assumption``.
+
+    ``value`` is None when no ceiling is claimed (an assumption the operator has not declared, or a
+    variant with no known worst-case bound); ``implied`` then still reports what the counts so far
+    imply, e.g. the largest margin consistent with the updates.
+    """
+
+    value: float | None
+    formula: str
+    assumption: str
+    source: str
+    counts: Literal["updates", "mistakes"] = "updates"
+    implied: Mapping[str, float] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "value": self.value,
+            "formula": self.formula,
+            "assumption": self.assumption,
+            "source": self.source,
+            "counts": self.counts,
+            "implied": dict(self.implied),
+        }
+
+
+def standing(count: int, ceiling: Ceiling, contradicted: bool, near: float = 0.8) -> Standing:
+    """Where a learner stands against its ceiling.
+
+    contradicted: the stream has proven the assumption false directly; exceeded: the counted
+    quantity is above the ceiling; near: it has reached ``near`` times the ceiling; else within.
+    """
+    if contradicted:
+        return "contradicted"
+    if ceiling.value is None:
+        return "within"
+    if count > ceiling.value:
+        return "exceeded"
+    if count >= near * ceiling.value:
+        return "near"
+    return "within"
+
+
+def check_label(label: Any) -> int:
+    """Return a label as 1 or 0, accepting only 0, 1, True and False."""
+    if isinstance(label, bool):
+        return int(label)
+    if isinstance(label, int | float) and label in (0, 1):
+        return int(label)
+    raise LabelError(
+        f"A label must be 0, 1, true or false; got {shown(label)}.",
+        field="label",
+        rule="one of 0, 1, true, false",
+        value=label if isinstance(label, int | float | str) else shown(label),
+    )
+
+
+def check_number(
+    kind: str,
+    name: str,
+    value: Any,
+    *,
+    low: float | None = None,
+    high: float | None = None,
+    low_open: bool = False,
+    high_open: bool = False,
+    integer: bool = False,
+) -> float:
+    """Validate one numeric constructor parameter and return it; raise a named ParameterError."""
+    rule = _range_rule(low, high, low_open, high_open, integer)
+    ok = isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value)
+    if ok and integer and value != int(value):
+        ok = False
+    if ok and low is not None and (value <= low if low_open else value < low):
+        ok = False
+    if ok and high is not None and (value >= high if high_open else value > high):
+        ok = False
+    if not ok:
+        raise ParameterError(
+            f"The {name!r} parameter of {kind} must be {rule}; got {shown(value)}.",
+            field=name,
+            rule=rule,
+            value=value if isinstance(value, int | float | str) else shown(value),
+        )
+    return int(value) if integer else float(value)
+
+
+def check_choice(kind: str, name: str, value: Any, choices: tuple[str, ...]) -> str:
+    """Validate one named option of a constructor and return it."""
+    if value not in choices:
+        rule = "one of " + ", ".join(repr(c) for c in choices)
+        raise ParameterError(
+            f"The {name!r} parameter of {kind} must be {rule}; got {shown(value)}.",
+            field=name,
+            rule=rule,
+            value=value if isinstance(value, str | int | float) else shown(value),
+        )
+    return str(value)
+
+
+def _range_rule(
+    low: float | None, high: float | None, low_open: bool, high_open: bool, integer: bool
+) -> str:
+    noun = "an integer" if integer else "a finite number"
+    parts = []
+    if low is not None:
+        parts.append(f"{'>' if low_open else '>='} {low:g}")
+    if high is not None:
+        parts.append(f"{'<' if high_open else '<='} {high:g}")
+    return noun + (" " + " and ".join(parts) if parts else "")
+
+
+class Learner(ABC):
+    """An online binary classifier with a mistake ledger and a ceiling."""
+
+    kind: ClassVar[str]
+    #: True when the prediction function changes only at updates; only then does the served
+    #: ceiling (1 + G) U hold under delayed labels.
+    changes_only_on_update: ClassVar[bool] = True
+
+    def __init__(self, features: int | list[str] | FeatureSpace) -> None:
+        self.space = features if isinstance(features, FeatureSpace) else FeatureSpace(features)
+        self.examples = 0
+        self.mistakes = 0
+        self.updates = 0
+        self.contradicted = False
+
+    # -- what a subclass provides ------------------------------------------------------------
+
+    @abstractmethod
+    def params(self) -> dict[str, Any]:
+        """The constructor parameters other than ``features``, as plain data."""
+
+    @abstractmethod
+    def _predict(self, enc: Encoded) -> int:
+        """The current hypothesis on one encoded item: 0 or 1."""
+
+    @abstractmethod
+    def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
+        """Learn one labelled item; return (hypothesis was wrong, hypothesis updated)."""
+
+    @abstractmethod
+    def ceiling(self) -> Ceiling:
+        """The ceiling now, with live inputs (R, m*, |hypothesis|) read from the stream so far."""
+
+    @abstractmethod
+    def _learned_state(self) -> dict[str, Any]:
+        """What learning has built, as plain JSON-safe data."""
+
+    @abstractmethod
+    def _restore(self, learned: Mapping[str, Any]) -> None:
+        """Set the learned state from :meth:`_learned_state` output."""
+
+    # -- the protocol -----------------------------------------------------------------------
+
+    def predict(self, item: Item | Encoded) -> int:
+        """Predict 0 or 1 for one item. Does not learn."""
+        return self._predict(self.space.encode(item))
+
+    def learn(self, item: Item | Encoded, label: Any) -> bool:
+        """Learn from one labelled item; return True when the hypothesis was updated."""
+        y = check_label(label)
+        enc = self.space.encode(item)
+        wrong, updated = self._learn(enc, y)
+        self.examples += 1
+        self.mistakes += wrong
+        self.updates += updated
+        return updated
+
+    @property
+    def counted(self) -> int:
+        """The count the ceiling bounds (updates or mistakes, as the ceiling says)."""
+        return self.updates if self.ceiling().counts == "updates" else self.mistakes
+
+    def standing(self, near: float = 0.8) -> Standing:
+        """within, near, exceeded or contradicted (see :func:`standing`)."""
+        ceiling = self.ceiling()
+        count = self.updates if ceiling.counts == "updates" else self.mistakes
+        return standing(count, ceiling, self.contradicted, near)
+
+    def to_state(self, include_space: bool = True) -> dict[str, Any]:
+        """Plain JSON-safe data from which :func:`learners.from_state` continues exactly."""
+        state: dict[str, Any] = {
+            "kind": self.kind,
+            "version": STATE_VERSION,
+            "params": self.params(),
+            "counts": {
+                "examples": self.examples,
+                "mistakes": self.mistakes,
+                "updates": self.updates,
+                "contradicted": self.contradicted,
+            },
+            "learned": self._learned_state(),
+        }
+        if include_space:
+            state["space"] = self.space.to_state()
+        return state
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any], space: FeatureSpace | None = None) -> Learner:
+        """Rebuild a learner from :meth:`to_state`; ``space`` overrides the stored one if given."""
+        if state.get("version") != STATE_VERSION:
+            raise StateError(
+                f"A learner state must have version {STATE_VERSION}; got {state.get('version')!r}.",
+                field="version",
+                rule=f"equal to {STATE_VERSION}",
+                value=state.get("version"),
+            )
+        if space is None:
+            if "space" not in state:
+                raise StateError(
+                    "A learner state without a stored space needs one passed in.",
+                    field="space",
+                    rule="present, or a space passed to from_state",
+                    value=None,
+                )
+            space = FeatureSpace.from_state(state["space"])
+        learner = cls(space, **state["params"])
+        counts = state["counts"]
+        learner.examples = int(counts["examples"])
+        learner.mistakes = int(counts["mistakes"])
+        learner.updates = int(counts["updates"])
+        learner.contradicted = bool(counts["contradicted"])
+        learner._restore(state["learned"])
+        return learner
+
+    def __repr__(self) -> str:
+        args = ", ".join(f"{k}={v!r}" for k, v in self.params().items())
+        return f"<{self.kind} {args} updates={self.updates}>"
+
+
+def ensure_length(array: Any, length: int, fill: float) -> Any:
+    """Grow a 1-d numpy array to at least ``length`` (doubling), new slots set to ``fill``."""
+    if len(array) >= length:
+        return array
+    grown = np.full(max(length, 2 * len(array), 16), fill, dtype=array.dtype)
+    grown[: len(array)] = array
+    return grown
+
+
+__all__ = [
+    "Ceiling",
+    "Learner",
+    "Standing",
+    "check_choice",
+    "check_label",
+    "check_number",
+    "ensure_length",
+    "standing",
+]

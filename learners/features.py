@@ -1,0 +1,251 @@
+"""Feature spaces: from named, sparse items to the dense indices the learners compute with.
+
+An item is either a mapping from feature name to a finite number (a flag is 1; a name that is absent
+means 0) or a list of the names of the flags that are on. A space is declared in one of two ways:
+
+- closed: a list of names. Every name is known from the start; any other name is an error.
+- open: a size ``n``. Names are admitted, in the order they first occur, until ``n`` are known;
+  one more is an error. The declared ``n`` enters the ceilings (elimination ``n``, Winnow ``log n``)
+  but never the memory: a space costs memory only for the names it has admitted.
+
+Encoding is all-or-nothing: an item that fails validation admits no name. Zero values are dropped
+(absent means 0), so they never admit a name either.
+
+Several learners on one stream share one space, so an item is encoded once and every learner reads
+the same :class:`Encoded`.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from typing import Any
+
+import numpy as np
+
+from learners.errors import FeatureError, ParameterError, StateError, shown
+
+Item = Mapping[str, float] | Sequence[str]
+
+SPACE_STATE_VERSION = 1
+
+
+class Encoded:
+    """One item in a space's indices: ``idx`` and ``val`` (numpy arrays), and the ``on`` set.
+
+    ``on`` holds the indices whose value is non-zero; boolean learners read a feature as true when
+    it is in ``on``. Indices are unique within an item and keep the item's order.
+    """
+
+    __slots__ = ("idx", "val", "on", "binary")
+
+    def __init__(self, idx: np.ndarray, val: np.ndarray, binary: bool) -> None:
+        self.idx = idx
+        self.val = val
+        self.on: frozenset[int] = frozenset(idx.tolist())
+        self.binary = binary  # every value is exactly 1
+
+    def sq_norm(self) -> float:
+        """The squared Euclidean norm of the item."""
+        return float(len(self.idx)) if self.binary else float(self.val @ self.val)
+
+
+class FeatureSpace:
+    """A declared feature space that maps names to indices 0, 1, 2, ... in order of admission."""
+
+    def __init__(self, features: int | Sequence[str]) -> None:
+        if isinstance(features, bool) or not isinstance(features, int | list | tuple):
+            raise ParameterError(
+                "The 'features' parameter must be a positive integer size or a list of names; "
+                f"got {shown(features)}.",
+                field="features",
+                rule="positive integer or list of names",
+                value=features,
+            )
+        self.names: list[str] = []
+        self.index: dict[str, int] = {}
+        if isinstance(features, int):
+            if features < 1:
+                raise ParameterError(
+                    f"The 'features' size must be a positive integer; got {features}.",
+                    field="features",
+                    rule="positive integer",
+                    value=features,
+                )
+            self.size = features
+            self.closed = False
+        else:
+            if not features:
+                raise ParameterError(
+                    "The 'features' list must name at least one feature; got an empty list.",
+                    field="features",
+                    rule="non-empty list of names",
+                    value=[],
+                )
+            for position, name in enumerate(features):
+                if not isinstance(name, str) or not name:
+                    raise ParameterError(
+                        f"Feature names must be non-empty strings; item {position} of 'features' "
+                        f"is {shown(name)}.",
+                        field=f"features[{position}]",
+                        rule="non-empty string",
+                        value=name,
+                    )
+                if name in self.index:
+                    raise ParameterError(
+                        f"Feature names must be unique; {name!r} appears twice in 'features'.",
+                        field=f"features[{position}]",
+                        rule="unique names",
+                        value=name,
+                    )
+                self.index[name] = len(self.names)
+                self.names.append(name)
+            self.size = len(self.names)
+            self.closed = True
+
+    def __len__(self) -> int:
+        """How many names are known (admitted or declared)."""
+        return len(self.names)
+
+    def encode(self, item: Item | Encoded) -> Encoded:
+        """Validate ``item`` and return it in this space's indices, admitting new names if open."""
+        if isinstance(item, Encoded):
+            return item
+        pairs = _pairs(item)
+        index = self.index
+        fresh: list[str] = []
+        keys: list[int] = []
+        vals: list[float] = []
+        binary = True
+        for name, value in pairs:
+            if value == 0:
+                continue
+            position = index.get(name)
+            if position is None:
+                if self.closed:
+                    raise FeatureError(
+                        f"Feature {name!r} is not in this stream's closed feature space.",
+                        field=f"features.{name}",
+                        rule="name declared in the stream's feature list",
+                        value=name,
+                    )
+                position = len(self.names) + len(fresh)
+                fresh.append(name)
+            keys.append(position)
+            vals.append(value)
+            if value != 1:
+                binary = False
+        if fresh:
+            if len(self.names) + len(fresh) > self.size:
+                raise FeatureError(
+                    f"The feature space is declared with {self.size} features and is full; "
+                    f"the item brings {len(fresh)} new name(s), first {fresh[0]!r}.",
+                    field=f"features.{fresh[0]}",
+                    rule=f"at most {self.size} distinct feature names",
+                    value=fresh[0],
+                )
+            for name in fresh:
+                index[name] = len(self.names)
+                self.names.append(name)
+        idx = np.array(keys, dtype=np.int64)
+        val = np.ones(len(keys)) if binary else np.array(vals, dtype=np.float64)
+        return Encoded(idx, val, binary)
+
+    def to_state(self) -> dict[str, Any]:
+        """Plain data from which :meth:`from_state` rebuilds this space, names in order."""
+        return {
+            "version": SPACE_STATE_VERSION,
+            "size": self.size,
+            "closed": self.closed,
+            "names": list(self.names),
+        }
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any]) -> FeatureSpace:
+        """Rebuild a space written by :meth:`to_state`."""
+        if not isinstance(state, Mapping) or state.get("version") != SPACE_STATE_VERSION:
+            raise StateError(
+                f"A feature-space state must be a mapping with version {SPACE_STATE_VERSION}; "
+                f"got {shown(state)}.",
+                field="space.version",
+                rule=f"equal to {SPACE_STATE_VERSION}",
+                value=state.get("version") if isinstance(state, Mapping) else state,
+            )
+        names = state.get("names")
+        if not isinstance(names, list):
+            raise StateError(
+                "A feature-space state needs a list of names.",
+                field="space.names",
+                rule="list of strings",
+                value=names,
+            )
+        if state.get("closed"):
+            return cls(names)
+        space = cls(int(state["size"]))
+        space.adopt(names)
+        return space
+
+    def adopt(self, names: Iterable[str]) -> None:
+        """Admit ``names`` in order (used when restoring); names already known keep their index."""
+        for name in names:
+            if name not in self.index:
+                if self.closed or len(self.names) >= self.size:
+                    raise StateError(
+                        f"Cannot restore feature {name!r}: the space does not admit it.",
+                        field="space.names",
+                        rule="names fit the declared space",
+                        value=name,
+                    )
+                self.index[name] = len(self.names)
+                self.names.append(name)
+
+
+def _pairs(item: Any) -> list[tuple[str, float]]:
+    """Check an item's shape and values; return (name, value) pairs with values as floats."""
+    if isinstance(item, Mapping):
+        pairs: list[tuple[str, float]] = []
+        for name, value in item.items():
+            if not isinstance(name, str) or not name:
+                raise FeatureError(
+                    f"Feature names must be non-empty strings; got {shown(name)}.",
+                    field="features",
+                    rule="non-empty string names",
+                    value=name,
+                )
+            if isinstance(value, int | float) and math.isfinite(value):
+                value = float(value)  # bool is an int: True reads as 1.0
+            else:
+                raise FeatureError(
+                    f"Feature {name!r} must have a finite number as its value; got {shown(value)}.",
+                    field=f"features.{name}",
+                    rule="finite number",
+                    value=value if isinstance(value, int | float) else shown(value),
+                )
+            pairs.append((name, value))
+        return pairs
+    if isinstance(item, list | tuple):
+        seen: set[str] = set()
+        for name in item:
+            if not isinstance(name, str) or not name:
+                raise FeatureError(
+                    f"A list item holds the names of flags that are on; got {shown(name)}.",
+                    field="features",
+                    rule="list of non-empty strings",
+                    value=shown(name),
+                )
+            if name in seen:
+                raise FeatureError(
+                    f"Flag {name!r} is listed twice in one item.",
+                    field=f"features.{name}",
+                    rule="each flag at most once",
+                    value=name,
+                )
+            seen.add(name)
+        return [(name, 1.0) for name in item]
+    raise FeatureError(
+        "An item must be a mapping from feature name to number or a list of flag names; "
+        f"got {type(item).__name__}.",
+        field="features",
+        rule="mapping or list",
+        value=shown(item),
+    )
