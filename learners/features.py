@@ -31,23 +31,45 @@ SPACE_STATE_VERSION = 1
 
 
 class Encoded:
-    """One item in a space's indices: ``idx`` and ``val`` (numpy arrays), and the ``on`` set.
+    """One item in a space's indices: ``keys`` (list of ints) and ``vals`` (None when all are 1).
 
-    ``on`` holds the indices whose value is non-zero; boolean learners read a feature as true when
-    it is in ``on``. Indices are unique within an item and keep the item's order.
+    The numpy views ``idx`` and ``val`` and the set ``on`` (indices whose value is non-zero; boolean
+    learners read a feature as true when it is in ``on``) are built on first use and kept, so a
+    panel of learners shares one encoding and pays only for what it reads. Indices are unique
+    within an item and keep the item's order.
     """
 
-    __slots__ = ("idx", "val", "on", "binary")
+    __slots__ = ("keys", "vals", "binary", "_idx", "_val", "_on")
 
-    def __init__(self, idx: np.ndarray, val: np.ndarray, binary: bool) -> None:
-        self.idx = idx
-        self.val = val
-        self.on: frozenset[int] = frozenset(idx.tolist())
-        self.binary = binary  # every value is exactly 1
+    def __init__(self, keys: list[int], vals: list[float] | None) -> None:
+        self.keys = keys
+        self.binary = vals is None or vals.count(1.0) == len(vals)
+        self.vals = None if self.binary else vals
+        self._idx: np.ndarray | None = None
+        self._val: np.ndarray | None = None
+        self._on: frozenset[int] | None = None
+
+    @property
+    def idx(self) -> np.ndarray:
+        if self._idx is None:
+            self._idx = np.array(self.keys, dtype=np.int64)
+        return self._idx
+
+    @property
+    def val(self) -> np.ndarray:
+        if self._val is None:
+            self._val = np.ones(len(self.keys)) if self.vals is None else np.array(self.vals)
+        return self._val
+
+    @property
+    def on(self) -> frozenset[int]:
+        if self._on is None:
+            self._on = frozenset(self.keys)
+        return self._on
 
     def sq_norm(self) -> float:
         """The squared Euclidean norm of the item."""
-        return float(len(self.idx)) if self.binary else float(self.val @ self.val)
+        return float(len(self.keys)) if self.vals is None else float(self.val @ self.val)
 
 
 class FeatureSpace:
@@ -111,45 +133,45 @@ class FeatureSpace:
         """Validate ``item`` and return it in this space's indices, admitting new names if open."""
         if isinstance(item, Encoded):
             return item
-        pairs = _pairs(item)
-        index = self.index
-        fresh: list[str] = []
-        keys: list[int] = []
-        vals: list[float] = []
-        binary = True
-        for name, value in pairs:
-            if value == 0:
-                continue
-            position = index.get(name)
-            if position is None:
-                if self.closed:
-                    raise FeatureError(
-                        f"Feature {name!r} is not in this stream's closed feature space.",
-                        field=f"features.{name}",
-                        rule="name declared in the stream's feature list",
-                        value=name,
-                    )
-                position = len(self.names) + len(fresh)
-                fresh.append(name)
-            keys.append(position)
-            vals.append(value)
-            if value != 1:
-                binary = False
-        if fresh:
-            if len(self.names) + len(fresh) > self.size:
-                raise FeatureError(
-                    f"The feature space is declared with {self.size} features and is full; "
-                    f"the item brings {len(fresh)} new name(s), first {fresh[0]!r}.",
-                    field=f"features.{fresh[0]}",
-                    rule=f"at most {self.size} distinct feature names",
-                    value=fresh[0],
-                )
-            for name in fresh:
-                index[name] = len(self.names)
+        vals: list[float] | None
+        if type(item) is list and _plain_flags(item):
+            names: list[str] = item
+            vals = None
+        elif type(item) is dict and _plain_values(item):
+            names = [k for k, v in item.items() if v != 0]
+            vals = [float(item[k]) for k in names]
+        else:  # the slow path finds and names what is wrong, or accepts other mappings
+            pairs = [(k, v) for k, v in _pairs(item) if v != 0]
+            names = [k for k, _ in pairs]
+            vals = [v for _, v in pairs]
+        get = self.index.get
+        keys = [get(name, -1) for name in names]
+        if -1 in keys:
+            self._admit(names, keys)
+        return Encoded(keys, vals)
+
+    def _admit(self, names: list[str], keys: list[int]) -> None:
+        """Fill the -1 slots of ``keys`` with new indices for their names, all or none."""
+        fresh = [name for name, key in zip(names, keys, strict=True) if key == -1]
+        if self.closed:
+            raise FeatureError(
+                f"Feature {fresh[0]!r} is not in this stream's closed feature space.",
+                field=f"features.{fresh[0]}",
+                rule="name declared in the stream's feature list",
+                value=fresh[0],
+            )
+        if len(self.names) + len(fresh) > self.size:
+            raise FeatureError(
+                f"The feature space is declared with {self.size} features and is full; "
+                f"the item brings {len(fresh)} new name(s), first {fresh[0]!r}.",
+                field=f"features.{fresh[0]}",
+                rule=f"at most {self.size} distinct feature names",
+                value=fresh[0],
+            )
+        for position, name in enumerate(names):
+            if keys[position] == -1:
+                keys[position] = self.index[name] = len(self.names)
                 self.names.append(name)
-        idx = np.array(keys, dtype=np.int64)
-        val = np.ones(len(keys)) if binary else np.array(vals, dtype=np.float64)
-        return Encoded(idx, val, binary)
 
     def to_state(self) -> dict[str, Any]:
         """Plain data from which :meth:`from_state` rebuilds this space, names in order."""
@@ -198,6 +220,25 @@ class FeatureSpace:
                     )
                 self.index[name] = len(self.names)
                 self.names.append(name)
+
+
+def _plain_flags(item: list[Any]) -> bool:
+    """True for a list of distinct non-empty strings (the common case, checked fast)."""
+    try:
+        distinct = set(item)
+    except TypeError:  # an unhashable element: the slow path names it
+        return False
+    return len(distinct) == len(item) and "" not in distinct and set(map(type, distinct)) <= {str}
+
+
+def _plain_values(item: dict[Any, Any]) -> bool:
+    """True for a dict of non-empty string names to finite floats or ints (checked fast)."""
+    if "" in item or not set(map(type, item)) <= {str}:
+        return False
+    kinds = set(map(type, item.values()))
+    if not kinds <= {float, int}:
+        return False
+    return float not in kinds or all(map(math.isfinite, item.values()))
 
 
 def _pairs(item: Any) -> list[tuple[str, float]]:
