@@ -67,7 +67,9 @@ def dense_rows() -> tuple[np.ndarray, np.ndarray, list[str]]:
     from sklearn.datasets import load_breast_cancer  # bundled with scikit-learn, no download
 
     data = load_breast_cancer()
-    x = (data.data - data.data.mean(axis=0)) / data.data.std(axis=0)
+    # Scaled to [0, 1] per column: every learner accepts that range (Winnow needs it).
+    low, high = data.data.min(axis=0), data.data.max(axis=0)
+    x = (data.data - low) / (high - low)
     return x, data.target.astype(int), [f"c{i}" for i in range(x.shape[1])]
 
 

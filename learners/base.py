@@ -73,7 +73,7 @@ def standing(count: int, ceiling: Ceiling, contradicted: bool, near: float = 0.8
         return "within"
     if count > ceiling.value:
         return "exceeded"
-    if count >= near * ceiling.value:
+    if count > 0 and count >= near * ceiling.value:
         return "near"
     return "within"
 
@@ -153,7 +153,7 @@ class Learner(ABC):
     kind: ClassVar[str]
     #: True when the prediction function changes only at updates; only then does the served
     #: ceiling (1 + G) U hold under delayed labels.
-    changes_only_on_update: ClassVar[bool] = True
+    changes_only_on_update: bool = True
 
     def __init__(self, features: int | list[str] | FeatureSpace) -> None:
         self.space = features if isinstance(features, FeatureSpace) else FeatureSpace(features)
