@@ -26,7 +26,7 @@ from typing import Any, ClassVar, Literal
 
 import numpy as np
 
-from learners.errors import LabelError, ParameterError, StateError, shown
+from learners.errors import LabelError, LearnerError, ParameterError, StateError, shown
 from learners.features import Encoded, FeatureSpace, Item
 
 STATE_VERSION = 1
@@ -190,14 +190,33 @@ class Learner(ABC):
 
     # -- the protocol -----------------------------------------------------------------------
 
+    def check(self, enc: Encoded) -> None:
+        """Refuse an item this learner cannot read (e.g. Winnow's values outside [0, 1]).
+
+        Raise a :class:`FeatureError`; the default accepts every encoded item. A stream calls this
+        for every learner of its panel before any of them acts on the item.
+        """
+        return None
+
+    def encode(self, item: Item | Encoded) -> Encoded:
+        """Encode and check ``item``; on refusal no name it brought stays admitted."""
+        known = len(self.space)
+        enc = self.space.encode(item)
+        try:
+            self.check(enc)
+        except LearnerError:
+            self.space.forget(known)
+            raise
+        return enc
+
     def predict(self, item: Item | Encoded) -> int:
         """Predict 0 or 1 for one item. Does not learn."""
-        return self._predict(self.space.encode(item))
+        return self._predict(self.encode(item))
 
     def learn(self, item: Item | Encoded, label: Any) -> bool:
         """Learn from one labelled item; return True when the hypothesis was updated."""
         y = check_label(label)
-        enc = self.space.encode(item)
+        enc = self.encode(item)
         wrong, updated = self._learn(enc, y)
         self.examples += 1
         self.mistakes += wrong

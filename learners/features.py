@@ -173,6 +173,14 @@ class FeatureSpace:
                 keys[position] = self.index[name] = len(self.names)
                 self.names.append(name)
 
+    def forget(self, known: int) -> None:
+        """Drop the names admitted after the first ``known`` (undo an item refused later)."""
+        if self.closed:
+            return
+        for name in self.names[known:]:
+            del self.index[name]
+        del self.names[known:]
+
     def to_state(self) -> dict[str, Any]:
         """Plain data from which :meth:`from_state` rebuilds this space, names in order."""
         return {

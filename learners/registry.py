@@ -10,9 +10,19 @@ from learners.base import Learner
 from learners.elimination import Elimination
 from learners.errors import ParameterError, StateError, shown
 from learners.features import FeatureSpace
+from learners.halving import Halving
+from learners.passive_aggressive import PassiveAggressive
+from learners.perceptron import Perceptron
+from learners.weighted_majority import WeightedMajority
+from learners.winnow import Winnow
 
 KINDS: dict[str, type[Learner]] = {
     Elimination.kind: Elimination,
+    Perceptron.kind: Perceptron,
+    PassiveAggressive.kind: PassiveAggressive,
+    Winnow.kind: Winnow,
+    WeightedMajority.kind: WeightedMajority,
+    Halving.kind: Halving,
 }
 
 

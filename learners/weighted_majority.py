@@ -1,0 +1,342 @@
+"""Weighted majority: a weighted vote of simple rules, where every rule that errs loses weight.
+
+What it learns
+    Nothing about the target's shape: it follows the best of a set of rules (the *experts*), and
+    its ceiling is relative to that rule's mistakes, so it fits noisy streams. A rule is a flag
+    (``name`` votes the flag), a negated flag (``!name`` votes its complement) or a constant
+    (``true``, ``false``). With ``rules`` given, the experts are those rules; without, they are
+    every flag of the declared space, its negation and both constants: ``N = 2n + 2``.
+
+Prediction
+    The total weight of the rules voting 1 against the total voting 0; 1 only when strictly more
+    (a tie predicts 0; any tie rule keeps the ceiling, since on a mistake the erring side holds at
+    least half the weight). The sums are float64: with a ``beta`` that is not a power of two, a
+    vote tied in exact arithmetic may fall either way by rounding, which is still a tie rule.
+
+Update rule
+    Only when the master prediction was wrong: the weight of every rule that erred on the item is
+    multiplied by ``beta`` in [0, 1) (default 0.5). Weights start at 1. ``beta = 0`` is halving
+    over the rules: a rule that errs on an update is dropped.
+
+Mistake ceiling (counts updates, which are exactly the master's label-time mistakes)
+    ``M <= (log2 N + m* log2(1 / beta)) / log2(2 / (1 + beta))``, with ``m*`` the fewest mistakes
+    any one rule has made on all the labels so far (read live, and reported as
+    ``implied["best_rule_mistakes"]``; :meth:`best_rules` names the rules that reach it).
+    ``N = 1000, m* = 10, beta = 1/2`` gives 48.1. The proof: on a master mistake the rules that
+    erred hold at least half the weight, so the total falls to at most ``(1 + beta) / 2`` of
+    itself; the best rule keeps at least ``beta ** m*`` (it lost weight only on labels it got
+    wrong); the total starts at ``N``. Updating only on master mistakes keeps the proof whole: the
+    total does not move on other labels, and the best rule's mistakes *on update labels* are at
+    most its mistakes on all labels, so ``m*`` counted over every label (which is what an operator
+    can read) only loosens the ceiling. Since ``m*`` is observed, this ceiling holds on every
+    stream; being past it means a fault, not a broken assumption.
+
+    ``beta = 0``: ``M <= log2 N`` while some rule has made no mistake at all. ``m* > 0`` proves that
+    no rule agrees with the stream (the version space is empty): the learner is then
+    ``contradicted``.
+
+Cost
+    Every rule's mistakes are derived, not stored: per flag, how many labels of each class came
+    with the flag on; a flag rule's mistakes are then ``(positives - positives with it on) +
+    negatives with it on`` (and the mirror for its negation), O(active flags) per label. Without
+    ``rules``, a rule on a flag never seen on has voted exactly like a constant on every label, so
+    it has the constant's weight and mistakes: such rules are counted in bulk, never stored, and
+    the space may declare n = 10^8. The weights of all rules that vote with the flags that are off
+    (nearly all of them) change together on an update; one scale factor per side carries them
+    (:class:`learners.rules.ScaledWeights`), so an update is O(active flags) too. Weights are
+    renormalised by a power of two (exact) whenever their total leaves 2^-64 .. 2^64. A weight
+    that falls below 1e-308 of the total flushes to 0; the best rule always has the largest
+    weight (at least 1/N of the total), so the ceiling's proof is unaffected.
+
+    Reading ``m*`` (the ceiling) and :meth:`best_rules` cost O(rules stored) in numpy, so a panel
+    of up to about 10^5 rules (or flags seen) stays cheap; beyond that the cost of each ceiling
+    read grows with the number of experts.
+
+References
+    N. Littlestone and M. K. Warmuth, "The weighted majority algorithm", Information and
+    Computation 108(2), 1994.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from learners.base import Ceiling, Learner, check_number, ensure_length
+from learners.errors import ParameterError, StateError, shown
+from learners.features import Encoded, FeatureSpace
+from learners.rules import (
+    ScaledWeights,
+    SlotMap,
+    check_names_known,
+    literal_text,
+    parse_literal,
+)
+
+SOURCE = (
+    'Littlestone and Warmuth 1994, "The weighted majority algorithm", Information and '
+    "Computation 108(2)"
+)
+_NORMAL_EXPONENT = 64  # renormalise when the total weight leaves 2^-64 .. 2^64
+
+
+class WeightedMajority(Learner):
+    """Deterministic weighted majority over flag rules, negated flag rules and the constants."""
+
+    kind = "weighted-majority"
+
+    def __init__(
+        self,
+        features: int | list[str] | FeatureSpace,
+        rules: list[str] | None = None,
+        beta: float = 0.5,
+    ) -> None:
+        super().__init__(features)
+        self.beta = check_number(self.kind, "beta", beta, low=0.0, high=1.0, high_open=True)
+        self.rules = None if rules is None else self._parse(rules)
+        if self.rules is None:
+            # Slots are space indices; slot count n + 1 for a flag that is never on (its rule is
+            # the constant false, its negation the constant true).
+            count = self.space.size + 1
+            self.n_rules = 2 * self.space.size + 2
+            self._pos = ScaledWeights(count, 1.0)
+            self._neg = ScaledWeights(count, 1.0)
+            self._map: SlotMap | None = None
+        else:
+            names = list(dict.fromkeys(n for n, _ in self._literals if n is not None))
+            m = len(names)
+            slot = {name: i for i, name in enumerate(names)}
+            self._rule_slot = np.array(
+                [m if n is None else slot[n] for n, _ in self._literals], dtype=np.int64
+            )
+            self._rule_positive = np.array([p for _, p in self._literals], dtype=bool)
+            has_pos = np.zeros(m + 1)
+            has_neg = np.zeros(m + 1)
+            has_pos[self._rule_slot[self._rule_positive]] = 1.0
+            has_neg[self._rule_slot[~self._rule_positive]] = 1.0
+            self.n_rules = len(self.rules)
+            self._pos = ScaledWeights(m + 1, 0.0, has_pos)
+            self._neg = ScaledWeights(m + 1, 0.0, has_neg)
+            self._has_pos, self._has_neg = has_pos > 0, has_neg > 0
+            self._map = SlotMap(self.space, names)
+        self._on1 = np.zeros(0 if self._map is None else len(self._pos.rel), dtype=np.int64)
+        self._on0 = self._on1.copy()
+        self.labels1 = 0  # labels of each class so far
+        self.labels0 = 0
+        self._best: tuple[int, int] = (-1, 0)  # (labels seen, m*) cache
+
+    def _parse(self, rules: Any) -> list[str]:
+        if not isinstance(rules, list | tuple) or not rules:
+            raise ParameterError(
+                "The 'rules' parameter of weighted-majority must be a non-empty list of rules "
+                f"(flag names, !name, true, false); got {shown(rules)}.",
+                field="rules",
+                rule="non-empty list of rule strings",
+                value=shown(rules),
+            )
+        literals: list[tuple[str | None, bool]] = []
+        seen: dict[str, int] = {}
+        for i, text in enumerate(rules):
+            field = f"rules[{i}]"
+            if isinstance(text, str) and text in seen:
+                raise ParameterError(
+                    f"{field} of weighted-majority repeats rule {text!r} (first at "
+                    f"rules[{seen[text]}]); each rule may appear once.",
+                    field=field,
+                    rule="each rule at most once",
+                    value=text,
+                )
+            if text == "true" or text == "false":
+                literals.append((None, text == "false"))  # "false" = the never-on flag itself
+            else:
+                literals.append(parse_literal(text, kind=self.kind, field=field))
+            seen[text] = i
+        named = [(n, f"rules[{i}]") for i, (n, _) in enumerate(literals) if n is not None]
+        check_names_known(self.space, [n for n, _ in named], [f for _, f in named], self.kind)
+        self._literals = literals
+        return list(rules)
+
+    def params(self) -> dict[str, Any]:
+        return {"rules": self.rules, "beta": self.beta}
+
+    # -- predicting and learning ------------------------------------------------------------
+
+    def _slots(self, enc: Encoded) -> np.ndarray:
+        if self._map is not None:
+            return self._map.slots(enc.idx)
+        seen = len(self.space)
+        self._pos.grow(seen)
+        self._neg.grow(seen)
+        return enc.idx
+
+    def votes(self, item: Any) -> tuple[float, float]:
+        """The total weight voting 1 and voting 0 on one item (a tie predicts 0)."""
+        return self._votes(self._slots(self.space.encode(item)))
+
+    def _votes(self, slots: np.ndarray) -> tuple[float, float]:
+        on_pos = self._pos.sum_at(slots)  # flag rules that vote 1 (their flag is on)
+        on_neg = self._neg.sum_at(slots)  # negated rules that vote 0
+        ones = on_pos + (self._neg.weight() - on_neg)
+        zeros = (self._pos.weight() - on_pos) + on_neg
+        return ones, zeros
+
+    def _predict(self, enc: Encoded) -> int:
+        ones, zeros = self._votes(self._slots(enc))
+        return int(ones > zeros)
+
+    def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
+        slots = self._slots(enc)
+        ones, zeros = self._votes(slots)
+        wrong = int(ones > zeros) != y
+        if self._map is None:
+            size = len(self.space)
+            self._on1 = ensure_length(self._on1, size, 0)
+            self._on0 = ensure_length(self._on0, size, 0)
+        if y:
+            self.labels1 += 1
+            self._on1[slots] += 1
+        else:
+            self.labels0 += 1
+            self._on0[slots] += 1
+        if wrong:
+            b = self.beta
+            if y:  # erred: flag rules whose flag is off, negated rules whose flag is on
+                self._pos.mul(slots, 1.0, b)
+                self._neg.mul(slots, b, 1.0)
+            else:
+                self._pos.mul(slots, b, 1.0)
+                self._neg.mul(slots, 1.0, b)
+            total = self._pos.weight() + self._neg.weight()
+            if total > 0.0:
+                exponent = math.frexp(total)[1]
+                if abs(exponent) > _NORMAL_EXPONENT:
+                    self._pos.rescale(-exponent)
+                    self._neg.rescale(-exponent)
+        if self.beta == 0.0 and not self.contradicted and self.best_mistakes() > 0:
+            self.contradicted = True  # no rule agrees with every label: the version space is empty
+        return wrong, wrong
+
+    # -- every rule's mistakes ----------------------------------------------------------------
+
+    def _balance(self) -> np.ndarray:
+        """Per slot: negatives with the flag on minus positives with it on (``d``). A flag rule's
+        mistakes are ``labels1 + d``, its negation's ``labels0 - d``."""
+        length = max(len(self._on0), len(self._on1))
+        on0 = ensure_length(self._on0, length, 0)
+        on1 = ensure_length(self._on1, length, 0)
+        return on0[:length] - on1[:length]
+
+    def best_mistakes(self) -> int:
+        """m*: the fewest mistakes any one rule has made over all labels so far."""
+        key = self.labels0 + self.labels1
+        if self._best[0] == key:
+            return self._best[1]
+        d = self._balance()
+        if self._map is None:  # a never-seen flag (d = 0) is always among the rules
+            best = min(
+                self.labels1 + min(0, int(d.min(initial=0))),
+                self.labels0 - max(0, int(d.max(initial=0))),
+            )
+        else:
+            d = np.concatenate([d, np.zeros(len(self._has_pos) - len(d), dtype=np.int64)])
+            best = min(
+                self.labels1 + int(d[self._has_pos].min(initial=key)),
+                self.labels0 - int(d[self._has_neg].max(initial=-key)),
+            )
+        self._best = (key, best)
+        return best
+
+    def rule_mistakes(self) -> dict[str, int]:
+        """Every listed rule's mistakes so far (only with explicit ``rules``)."""
+        if self.rules is None:
+            raise ParameterError(
+                "rule_mistakes() lists explicit rules only; this learner has every flag as a "
+                "rule (use best_rules()).",
+                field="rules",
+                rule="explicit rules given",
+                value=None,
+            )
+        d = self._balance()
+        d = np.concatenate([d, np.zeros(len(self._has_pos) - len(d), dtype=np.int64)])
+        at = d[self._rule_slot]
+        mistakes = np.where(self._rule_positive, self.labels1 + at, self.labels0 - at)
+        return dict(zip(self.rules, mistakes.tolist(), strict=True))
+
+    def best_rules(self, limit: int = 10) -> list[str]:
+        """Up to ``limit`` rules that have made m* mistakes, constants first. Without explicit
+        ``rules``, a flag never seen on ties with the constants and is not listed by name."""
+        best = self.best_mistakes()
+        if self.rules is not None:
+            return [r for r, m in self.rule_mistakes().items() if m == best][:limit]
+        out = [c for c, m in (("true", self.labels0), ("false", self.labels1)) if m == best]
+        d = self._balance()[: len(self.space)]
+        names = self.space.names
+        pos = np.flatnonzero((self.labels1 + d == best) & (d != 0))
+        neg = np.flatnonzero((self.labels0 - d == best) & (d != 0))
+        out += [literal_text(names[j], True) for j in pos[:limit].tolist()]
+        out += [literal_text(names[j], False) for j in neg[:limit].tolist()]
+        return out[:limit]
+
+    def ceiling(self) -> Ceiling:
+        n_rules, b = self.n_rules, self.beta
+        best = self.best_mistakes()
+        implied = {"best_rule_mistakes": float(best), "rules": float(n_rules)}
+        if b == 0.0:
+            return Ceiling(
+                math.log2(n_rules),
+                "M <= log2 N (beta = 0: halving over the N rules)",
+                "some rule agrees with every label (noise-free)",
+                SOURCE,
+                "updates",
+                implied,
+            )
+        value = (math.log2(n_rules) + best * math.log2(1.0 / b)) / math.log2(2.0 / (1.0 + b))
+        return Ceiling(
+            value,
+            "M <= (log2 N + m* log2(1/beta)) / log2(2/(1+beta)), m* = best rule's mistakes so far",
+            "none: m* is read from the stream, so the ceiling holds on every stream",
+            SOURCE,
+            "updates",
+            implied,
+        )
+
+    # -- state --------------------------------------------------------------------------------
+
+    def _learned_state(self) -> dict[str, Any]:
+        length = max(len(self._on0), len(self._on1))
+        on0 = ensure_length(self._on0, length, 0)[:length]
+        on1 = ensure_length(self._on1, length, 0)[:length]
+        index = np.flatnonzero((on0 != 0) | (on1 != 0))
+        return {
+            "pos": self._pos.to_state(),
+            "neg": self._neg.to_state(),
+            "labels1": self.labels1,
+            "labels0": self.labels0,
+            "on_index": index.tolist(),
+            "on1": on1[index].tolist(),
+            "on0": on0[index].tolist(),
+        }
+
+    def _restore(self, learned: Mapping[str, Any]) -> None:
+        length = len(self.space) if self._map is None else len(self._pos.rel)
+        try:
+            self._pos.restore(learned["pos"], length, "learned.pos")
+            self._neg.restore(learned["neg"], length, "learned.neg")
+            index = np.asarray(learned["on_index"], dtype=np.int64)
+            size = max(length, int(index.max(initial=-1)) + 1)
+            self._on1 = np.zeros(size, dtype=np.int64)
+            self._on0 = np.zeros(size, dtype=np.int64)
+            self._on1[index] = np.asarray(learned["on1"], dtype=np.int64)
+            self._on0[index] = np.asarray(learned["on0"], dtype=np.int64)
+            self.labels1 = int(learned["labels1"])
+            self.labels0 = int(learned["labels0"])
+        except (KeyError, TypeError, ValueError, IndexError) as exc:
+            raise StateError(
+                f"A weighted-majority state cannot be restored: {exc!r}.",
+                field="learned",
+                rule="written by to_state",
+                value=None,
+            ) from exc
