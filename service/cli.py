@@ -1,0 +1,72 @@
+"""The ``mistake-ledger`` command: ``serve`` here; other modules add their commands to ``main``."""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+from typing import Any
+
+import click
+
+from service.security import is_loopback
+from service.settings import Settings
+
+
+@click.group()
+@click.version_option(package_name="mistake-ledger")
+def main() -> None:
+    """Online learners per stream with a live ledger of mistakes against their ceilings."""
+
+
+@main.command()
+@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on.")
+@click.option("--port", default=8000, show_default=True, type=click.IntRange(1, 65535))
+@click.option(
+    "--data-dir",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=None,
+    help="Directory of the SQLite store (default: MISTAKE_LEDGER_DATA_DIR or ./data).",
+)
+@click.option(
+    "--durability",
+    type=click.Choice(["full", "normal"]),
+    default=None,
+    help="full: a write survives power loss (default); normal: it survives a crash.",
+)
+@click.option("--log-level", default="info", show_default=True)
+def serve(
+    host: str, port: int, data_dir: Path | None, durability: str | None, log_level: str
+) -> None:
+    """Run the HTTP service (one process, one worker)."""
+    import uvicorn
+
+    from service.app import create_app
+
+    overrides: dict[str, Any] = {}
+    if data_dir is not None:
+        overrides["data_dir"] = data_dir
+    if durability is not None:
+        overrides["durability"] = durability
+    settings = Settings.from_env(**overrides)
+    if not settings.secured and not is_loopback(host):
+        raise click.UsageError(
+            f"Refusing to listen on {host}: no token is configured, so anyone who can reach "
+            "that address could use the service. Set MISTAKE_LEDGER_ADMIN_TOKEN (and stream "
+            "tokens) or listen on 127.0.0.1."
+        )
+    logging.basicConfig(level=log_level.upper(), format="%(asctime)s %(name)s %(message)s")
+    app = create_app(settings)
+    uvicorn.run(app, host=host, port=port, workers=1, log_level=log_level, lifespan="on")
+
+
+# -- the tools around the service: replay a file, print a ledger, run the demo -----------------
+from service.demo import demo_command  # noqa: E402
+from service.replay import ledger_command, replay_command  # noqa: E402
+
+main.add_command(replay_command)
+main.add_command(ledger_command)
+main.add_command(demo_command)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,475 @@
+"""The stream registry: checks requests, applies them to streams in log order, and logs them.
+
+Each write goes: check the request against the limits (nothing changes on failure), take the
+stream's lock, apply it to the stream (which raises before changing anything if the request
+conflicts with the state), append its event to the store, release the lock, and return the
+result with a future that resolves when the event is committed. The caller answers only then.
+Holding the lock from apply to append makes the log order the apply order.
+
+Requests that change nothing (a retried predict or label) are not logged; their future waits for
+everything queued before them, so a retry never answers before the original is durable.
+
+A background sweeper expires waiting predictions and snapshots streams that changed; every
+``snapshot_every_events`` events a stream is also snapshotted on the write path.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import threading
+import uuid
+from collections.abc import Callable, Sequence
+from concurrent.futures import Future
+from typing import Any
+
+import learners
+from learners import FeatureSpace, LearnerError
+from service.errors import Conflict, Gone, InvalidInput, NotFound, ServiceError, Unavailable
+from service.schemas import StreamCreate, contains_non_finite
+from service.settings import Settings
+from service.store import Store, StoreFailed
+from service.streams import Features, ItemError, Stream
+
+log = logging.getLogger("mistake_ledger.registry")
+
+AlertHook = Callable[[str, str, dict[str, Any]], None]
+
+
+class Registry:
+    """All streams of this process, their locks, and the store behind them."""
+
+    def __init__(
+        self,
+        settings: Settings,
+        store: Store,
+        clock: Callable[[], float],
+        *,
+        allowed_webhook: Callable[[str], bool] = lambda url: False,
+    ) -> None:
+        self.settings = settings
+        self.store = store
+        self.clock = clock
+        self.allowed_webhook = allowed_webhook
+        self.on_alert: AlertHook | None = None
+        self.streams: dict[str, Stream] = {}
+        self.lock = threading.Lock()
+        self.ready = False
+        self._stop = threading.Event()
+        self._sweeper: threading.Thread | None = None
+
+    # -- life cycle ------------------------------------------------------------------------
+
+    def open(self) -> None:
+        """Open the store, restore every stream from its snapshot and the events after it."""
+        self.store.open()
+        snapshots = self.store.snapshots()
+        for name, (seq, state) in snapshots.items():
+            stream = self._stream_from_state(state)
+            stream.last_seq = seq
+            self.streams[name] = stream
+        replayed = 0
+        for seq, name, event in self.store.events():
+            known = self.streams.get(name)
+            if event["type"] == "create":
+                if known is not None and known.last_seq >= seq:
+                    continue
+                stream = self._new_stream(event["config"], float(event["t"]))
+                self.streams[name] = stream
+            elif known is None or known.last_seq >= seq:
+                continue
+            else:
+                stream = known
+                stream.apply(event)
+                stream.new_alerts.clear()
+            stream.last_seq = seq
+            stream.unsnapshotted += 1
+            replayed += 1
+        self.store.start()
+        for stream in self.streams.values():
+            if stream.unsnapshotted >= self.settings.snapshot_every_events:
+                with stream.lock:
+                    self._snapshot(stream)
+        log.info("restored %d streams, replayed %d events", len(self.streams), replayed)
+        self.ready = True
+
+    def start_sweeper(self) -> None:
+        self._sweeper = threading.Thread(target=self._sweep_loop, name="sweeper", daemon=True)
+        self._sweeper.start()
+
+    def close(self, snapshot: bool = True) -> None:
+        """Stop the sweeper, snapshot every stream (unless told not to) and close the store."""
+        self.ready = False
+        self._stop.set()
+        if self._sweeper is not None:
+            self._sweeper.join()
+            self._sweeper = None
+        if snapshot and self.store.failed is None:
+            for stream in list(self.streams.values()):
+                with stream.lock:
+                    if stream.unsnapshotted and not stream.deleted:
+                        self._snapshot(stream)
+        self.store.close()
+
+    def _sweep_loop(self) -> None:
+        while not self._stop.wait(self.settings.sweep_interval_seconds):
+            try:
+                self.sweep()
+            except Exception:
+                log.exception("sweep failed")
+
+    def sweep(self) -> None:
+        """Expire waiting predictions and snapshot streams that changed a while ago."""
+        for stream in list(self.streams.values()):
+            with stream.lock:
+                if stream.deleted:
+                    continue
+                now = stream.advance(self.clock())
+                if (
+                    stream.unsnapshotted
+                    and now - stream.snapshot_t >= self.settings.snapshot_interval_seconds
+                    and self.store.failed is None
+                ):
+                    self._snapshot(stream)
+
+    def _snapshot(self, stream: Stream) -> None:
+        body = json.dumps(stream.to_state(), separators=(",", ":"), allow_nan=False)
+        self.store.snapshot(stream.name, stream.last_seq, body)
+        stream.unsnapshotted = 0
+        stream.snapshot_t = stream.last_t
+
+    def _new_stream(self, config: dict[str, Any], t: float) -> Stream:
+        return Stream(
+            config,
+            t,
+            history_points=self.settings.history_points,
+            max_remembered=self.settings.max_remembered_ids,
+        )
+
+    def _stream_from_state(self, state: dict[str, Any]) -> Stream:
+        return Stream.from_state(
+            state,
+            history_points=self.settings.history_points,
+            max_remembered=self.settings.max_remembered_ids,
+        )
+
+    # -- streams ---------------------------------------------------------------------------
+
+    def get(self, name: str) -> Stream:
+        stream = self.streams.get(name)
+        if stream is None:
+            raise NotFound(
+                f"No stream {name!r}.", field="stream", rule="an existing stream", value=name
+            )
+        return stream
+
+    def create(self, body: StreamCreate) -> tuple[dict[str, Any], Future[int]]:
+        config = self._config(body)
+        with self.lock:
+            if body.stream in self.streams:
+                raise Conflict(
+                    f"Stream {body.stream!r} exists already.",
+                    field="stream",
+                    rule="a new stream id",
+                    value=body.stream,
+                )
+            if len(self.streams) >= self.settings.max_streams:
+                raise Conflict(
+                    f"This service holds its limit of {self.settings.max_streams} streams; "
+                    "delete one or raise MISTAKE_LEDGER_MAX_STREAMS.",
+                    field="stream",
+                    rule=f"at most {self.settings.max_streams} streams",
+                    value=len(self.streams) + 1,
+                )
+            self._writable()
+            t = self.clock()
+            stream = self._new_stream(config, t)
+            with stream.lock:
+                self.streams[body.stream] = stream
+                event = {"type": "create", "stream": body.stream, "t": t, "config": config}
+                future = self._log(stream, event)
+                return stream.describe(), future
+
+    def _config(self, body: StreamCreate) -> dict[str, Any]:
+        """Check a new stream's panel and return its configuration as plain data."""
+        limit = self.settings.max_learners
+        if len(body.learners) > limit:
+            raise InvalidInput(
+                f"A panel holds at most {limit} learners; got {len(body.learners)}.",
+                field="learners",
+                rule=f"at most {limit} learners",
+                value=len(body.learners),
+            )
+        try:
+            space_spec: int | list[str] = body.features
+            FeatureSpace(space_spec)
+        except LearnerError as exc:
+            raise InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value) from exc
+        specs = []
+        names: set[str] = set()
+        for index, spec in enumerate(body.learners):
+            where = f"learners[{index}]"
+            if spec.name in names:
+                raise InvalidInput(
+                    f"Learner names must be unique in a stream; {spec.name!r} appears twice.",
+                    field=f"{where}.name",
+                    rule="unique in the stream",
+                    value=spec.name,
+                )
+            names.add(spec.name)
+            params = spec.params()
+            for key, value in params.items():
+                if contains_non_finite(value):
+                    raise InvalidInput(
+                        f"Parameter {key!r} of learner {spec.name!r} must be finite; "
+                        f"got {value!r}.",
+                        field=f"{where}.{key}",
+                        rule="finite number",
+                        value=repr(value),
+                    )
+            try:
+                learners.make(spec.kind, features=FeatureSpace(space_spec), **params)
+            except LearnerError as exc:
+                raise InvalidInput(
+                    f"Learner {spec.name!r}: {exc}",
+                    field=f"{where}.{exc.field}",
+                    rule=exc.rule,
+                    value=exc.value,
+                ) from exc
+            specs.append({"name": spec.name, "kind": spec.kind, "params": params})
+        serve = body.serve if body.serve is not None else specs[0]["name"]
+        if serve not in names:
+            raise InvalidInput(
+                f"The serving learner {serve!r} is not in the panel; it has "
+                + ", ".join(repr(s["name"]) for s in specs)
+                + ".",
+                field="serve",
+                rule="the name of a learner in the panel",
+                value=serve,
+            )
+        if body.webhook is not None and not self.allowed_webhook(body.webhook):
+            raise InvalidInput(
+                f"The webhook {body.webhook!r} is not in this service's allow list "
+                "(MISTAKE_LEDGER_WEBHOOK_ALLOW).",
+                field="webhook",
+                rule="a URL in the webhook allow list",
+                value=body.webhook,
+            )
+        return {
+            "stream": body.stream,
+            "features": space_spec,
+            "learners": specs,
+            "serve": serve,
+            "label_wait_seconds": float(body.label_wait_seconds),
+            "on_exceed": body.on_exceed,
+            "near": float(body.near),
+            "webhook": body.webhook,
+        }
+
+    def delete(self, name: str) -> Future[int]:
+        with self.lock:
+            stream = self.get(name)
+            with stream.lock:
+                self._writable()
+                del self.streams[name]
+                stream.deleted = True
+                return self.store.drop(name)
+
+    def describe(self, name: str) -> dict[str, Any]:
+        stream = self.get(name)
+        with stream.lock:
+            stream.advance(self.clock())
+            return stream.describe()
+
+    def ledger(self, name: str) -> dict[str, Any]:
+        stream = self.get(name)
+        with stream.lock:
+            stream.advance(self.clock())
+            return stream.ledger()
+
+    def compare(self, name: str) -> dict[str, Any]:
+        stream = self.get(name)
+        with stream.lock:
+            return stream.compare()
+
+    # -- writes ----------------------------------------------------------------------------
+
+    def predict(
+        self, name: str, items: Sequence[tuple[str | None, Features]], batch: bool
+    ) -> tuple[list[dict[str, Any]], Future[int]]:
+        self._check_batch(len(items))
+        for index, (_, features) in enumerate(items):
+            self._check_features(features, index, batch)
+        ids = [item_id or uuid.uuid4().hex for item_id, _ in items]
+        pairs = [(item_id, features) for item_id, (_, features) in zip(ids, items, strict=True)]
+        stream = self.get(name)
+        with stream.lock:
+            self._usable(stream)
+            t = max(self.clock(), stream.last_t)
+            try:
+                results = stream.apply_predict(t, pairs)
+            except ItemError as exc:
+                raise _located(exc, batch) from exc.error
+            fresh = [
+                {"id": item_id, "features": features}
+                for (item_id, features), r in zip(pairs, results, strict=True)
+                if not r["duplicate"]
+            ]
+            if fresh:
+                future = self._log(
+                    stream, {"type": "predict", "stream": name, "t": t, "items": fresh}
+                )
+            else:
+                future = self.store.barrier()
+            return results, future
+
+    def feedback(
+        self, name: str, items: Sequence[tuple[str, int]], batch: bool
+    ) -> tuple[list[dict[str, Any]], Future[int]]:
+        self._check_batch(len(items))
+        stream = self.get(name)
+        with stream.lock:
+            self._usable(stream)
+            t = max(self.clock(), stream.last_t)
+            results = stream.apply_feedback(t, list(items))
+            applied = [
+                {"id": item_id, "label": label}
+                for (item_id, label), r in zip(items, results, strict=True)
+                if r["status"] == "applied"
+            ]
+            for r in results:
+                if r["status"] == "duplicate":
+                    stream.volatile["duplicates"] += 1
+                elif r["status"] == "conflict":
+                    stream.volatile["conflicts"] += 1
+            if not batch:
+                _raise_single(results[0], items[0][1])
+            if applied:
+                event = {"type": "feedback", "stream": name, "t": t, "items": applied}
+                future = self._log(stream, event)
+            else:
+                future = self.store.barrier()
+            return results, future
+
+    def examples(
+        self, name: str, items: Sequence[tuple[str | None, Features, int]], batch: bool
+    ) -> tuple[list[dict[str, Any]], Future[int]]:
+        self._check_batch(len(items))
+        for index, (_, features, _) in enumerate(items):
+            self._check_features(features, index, batch)
+        triples = [(item_id or uuid.uuid4().hex, f, y) for item_id, f, y in items]
+        stream = self.get(name)
+        with stream.lock:
+            self._usable(stream)
+            t = max(self.clock(), stream.last_t)
+            try:
+                results = stream.apply_examples(t, triples)
+            except ItemError as exc:
+                raise _located(exc, batch) from exc.error
+            fresh = [
+                {"id": item_id, "features": f, "label": y}
+                for (item_id, f, y), r in zip(triples, results, strict=True)
+                if r["status"] == "applied"
+            ]
+            if fresh:
+                event = {"type": "examples", "stream": name, "t": t, "items": fresh}
+                future = self._log(stream, event)
+            else:
+                future = self.store.barrier()
+            return results, future
+
+    # -- helpers ---------------------------------------------------------------------------
+
+    def _log(self, stream: Stream, event: dict[str, Any]) -> Future[int]:
+        """Append the event (the stream's lock is held) and hand its alerts over on commit."""
+        try:
+            seq, future = self.store.append(stream.name, event)
+        except StoreFailed as exc:
+            raise Unavailable(str(exc), field="store", rule="a working store") from exc
+        stream.last_seq = seq
+        stream.unsnapshotted += 1
+        alerts, stream.new_alerts = stream.new_alerts, []
+        webhook = stream.config.get("webhook")
+        if alerts and webhook and self.on_alert is not None:
+            hook = self.on_alert
+            name = stream.name
+
+            def deliver(done: Future[int]) -> None:
+                if done.exception() is None:
+                    for alert in alerts:
+                        hook(webhook, name, alert)
+
+            future.add_done_callback(deliver)
+        if stream.unsnapshotted >= self.settings.snapshot_every_events:
+            self._snapshot(stream)
+        return future
+
+    def _writable(self) -> None:
+        if self.store.failed is not None:
+            raise Unavailable(
+                "The store failed; restart the service to recover from its log.",
+                field="store",
+                rule="a working store",
+                value=None,
+            )
+
+    def _usable(self, stream: Stream) -> None:
+        if stream.deleted:
+            raise NotFound(
+                f"No stream {stream.name!r}.",
+                field="stream",
+                rule="an existing stream",
+                value=stream.name,
+            )
+        self._writable()
+
+    def _check_batch(self, count: int) -> None:
+        limit = self.settings.max_batch_items
+        if count > limit:
+            raise InvalidInput(
+                f"A batch holds at most {limit} items; got {count}.",
+                field="items",
+                rule=f"at most {limit} items",
+                value=count,
+            )
+
+    def _check_features(self, features: Features, index: int, batch: bool) -> None:
+        limit = self.settings.max_features_per_item
+        if len(features) > limit:
+            where = f"items[{index}].features" if batch else "features"
+            raise InvalidInput(
+                f"An item holds at most {limit} features; got {len(features)}.",
+                field=where,
+                rule=f"at most {limit} features",
+                value=len(features),
+            )
+
+
+def _located(exc: ItemError, batch: bool) -> ServiceError:
+    """The item's error with its field under ``items[i]`` for a batch."""
+    error = exc.error
+    assert isinstance(error, ServiceError)
+    if batch:
+        error.field = f"items[{exc.index}].{error.field}"
+    return error
+
+
+def _raise_single(result: dict[str, Any], label: int) -> None:
+    status = result["status"]
+    item_id = result["id"]
+    if status == "conflict":
+        raise Conflict(result["message"], field="label", rule="the label given before", value=label)
+    if status == "unknown":
+        raise NotFound(result["message"], field="id", rule="a known prediction id", value=item_id)
+    if status == "expired":
+        raise Gone(result["message"], field="id", rule="a prediction still waiting", value=item_id)
+
+
+def committed(future: Future[int]) -> None:
+    """Raise Unavailable if a store future failed (for synchronous callers)."""
+    exc = future.exception()
+    if exc is not None:
+        raise Unavailable(str(exc), field="store", rule="a working store") from exc
+
+
+__all__ = ["Registry", "StoreFailed", "committed"]

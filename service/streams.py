@@ -1,0 +1,534 @@
+"""A stream: one feature space, a panel of learners, the predictions waiting for labels, the ledger.
+
+Everything that changes a stream goes through one of the ``apply_*`` methods with a time ``t``
+and the content of one logged event; the same methods replay the log after a restart, so the
+restored ledger is the one that was acknowledged. ``apply_*`` either raises before changing
+anything (a conflict, a feature outside a closed space) or applies the whole event.
+
+Time only moves forward: ``advance(t)`` expires the predictions whose wait ran out at ``t``
+(counted as expired, never silently dropped) and forgets labelled ids after their retention.
+Expiry depends only on ``t``, so the sweeps and reads that expire predictions between events
+need no log entry: the next event's ``t`` expires the very same ones on replay.
+
+Ids are remembered after their label (or expiry) for ``label_wait_seconds`` and at most
+``max_remembered_ids`` per stream, so a retried feedback is a duplicate (not learned twice), a
+different label is a conflict, and a late label for an expired prediction is told apart from an
+unknown id. After that an id is unknown.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import threading
+from collections import OrderedDict
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from learners import Encoded, FeatureSpace, LearnerError
+from service.accounting import Seat, mcnemar_exact
+from service.errors import Conflict, InvalidInput
+
+Features = Mapping[str, float] | Sequence[str]
+
+# Label delay histogram buckets in seconds (one second to thirty days).
+DELAY_BUCKETS = (
+    1.0,
+    10.0,
+    60.0,
+    300.0,
+    900.0,
+    3600.0,
+    4 * 3600.0,
+    12 * 3600.0,
+    86400.0,
+    2 * 86400.0,
+    7 * 86400.0,
+    30 * 86400.0,
+)
+
+
+def fingerprint(features: Features) -> str:
+    """A digest of an item that does not depend on the form: {"a": 1} and ["a"] are equal."""
+    if isinstance(features, Mapping):
+        pairs = sorted((str(k), float(v)) for k, v in features.items() if v != 0)
+    else:
+        pairs = sorted((str(k), 1.0) for k in features)
+    return hashlib.blake2b(json.dumps(pairs).encode(), digest_size=12).hexdigest()
+
+
+class ItemError(Exception):
+    """Wraps a service error raised for the ``index``-th item of an event."""
+
+    def __init__(self, index: int, error: Exception) -> None:
+        super().__init__(str(error))
+        self.index = index
+        self.error = error
+
+
+class Pending:
+    """A served prediction waiting for its label."""
+
+    __slots__ = ("t", "enc", "votes", "epochs", "fp")
+
+    def __init__(
+        self, t: float, enc: Encoded, votes: tuple[int, ...], epochs: tuple[int, ...], fp: str
+    ) -> None:
+        self.t = t
+        self.enc = enc
+        self.votes = votes
+        self.epochs = epochs
+        self.fp = fp
+
+
+class Resolved:
+    """What is remembered of an id after its label or its expiry."""
+
+    __slots__ = ("kind", "at", "fp", "label", "votes", "wrong", "updated")
+
+    def __init__(
+        self,
+        kind: str,  # "labelled", "expired" or "example"
+        at: float,
+        fp: str,
+        label: int | None,
+        votes: tuple[int, ...] | None,
+        wrong: int,
+        updated: int,
+    ) -> None:
+        self.kind = kind
+        self.at = at
+        self.fp = fp
+        self.label = label
+        self.votes = votes
+        self.wrong = wrong  # bit i: learner i was wrong
+        self.updated = updated  # bit i: learner i updated
+
+    def to_list(self) -> list[Any]:
+        votes = None if self.votes is None else list(self.votes)
+        return [self.kind, self.at, self.fp, self.label, votes, self.wrong, self.updated]
+
+    @classmethod
+    def from_list(cls, data: list[Any]) -> Resolved:
+        kind, at, fp, label, votes, wrong, updated = data
+        return cls(kind, at, fp, label, None if votes is None else tuple(votes), wrong, updated)
+
+
+class Stream:
+    """One stream's state; callers hold :attr:`lock` around every call (see ``registry``)."""
+
+    def __init__(
+        self, config: dict[str, Any], t: float, *, history_points: int, max_remembered: int
+    ) -> None:
+        self.config = config
+        self.name: str = config["stream"]
+        self.created = t
+        self.last_t = t
+        self.space = FeatureSpace(config["features"])
+        self.label_wait = float(config["label_wait_seconds"])
+        self.policy: str = config["on_exceed"]
+        self.max_remembered = max_remembered
+        self.seats = [
+            Seat(
+                spec["name"],
+                spec["kind"],
+                dict(spec["params"]),
+                self.space,
+                float(config["near"]),
+                history_points,
+                t,
+            )
+            for spec in config["learners"]
+        ]
+        self.serve_index = [s.name for s in self.seats].index(config["serve"])
+        self.epochs = tuple(s.epoch for s in self.seats)
+        self.pending: OrderedDict[str, Pending] = OrderedDict()
+        self.resolved: OrderedDict[str, Resolved] = OrderedDict()
+        self.counts = {"predictions": 0, "labels": 0, "examples": 0, "expired": 0}
+        self.delay_buckets = [0] * (len(DELAY_BUCKETS) + 1)
+        self.delay_sum = 0.0
+        # Not part of the replayed state: counted since this process started.
+        self.volatile = {"duplicates": 0, "conflicts": 0}
+        self.new_alerts: list[dict[str, Any]] = []
+        # Bookkeeping for the registry and the store.
+        self.lock = threading.RLock()
+        self.deleted = False
+        self.last_seq = 0
+        self.unsnapshotted = 0
+        self.snapshot_t = t
+
+    # -- time ------------------------------------------------------------------------------
+
+    def advance(self, t: float) -> float:
+        """Move the stream's time to ``t`` (never backwards); expire and forget by it."""
+        t = max(t, self.last_t)
+        self.last_t = t
+        wait = self.label_wait
+        pending = self.pending
+        while pending:
+            item_id, p = next(iter(pending.items()))
+            if p.t + wait > t:
+                break
+            del pending[item_id]
+            self._release(p)
+            self.resolved[item_id] = Resolved("expired", p.t + wait, p.fp, None, p.votes, 0, 0)
+            self.counts["expired"] += 1
+        resolved = self.resolved
+        while resolved:
+            item_id, r = next(iter(resolved.items()))
+            if r.at + wait > t and len(resolved) <= self.max_remembered:
+                break
+            del resolved[item_id]
+        return t
+
+    def _release(self, p: Pending) -> None:
+        for seat, epoch in zip(self.seats, p.epochs, strict=True):
+            if epoch == seat.epoch:
+                seat.outstanding -= 1
+
+    # -- events ----------------------------------------------------------------------------
+
+    def apply(self, event: Mapping[str, Any]) -> list[dict[str, Any]]:
+        """Apply one logged event (used by replay)."""
+        kind = event["type"]
+        items = event["items"]
+        t = float(event["t"])
+        if kind == "predict":
+            return self.apply_predict(t, [(i["id"], i["features"]) for i in items])
+        if kind == "feedback":
+            return self.apply_feedback(t, [(i["id"], int(i["label"])) for i in items])
+        if kind == "examples":
+            return self.apply_examples(
+                t, [(i["id"], i["features"], int(i["label"])) for i in items]
+            )
+        raise ValueError(f"unknown event type {kind!r}")
+
+    def apply_predict(
+        self, t: float, items: Sequence[tuple[str, Features]]
+    ) -> list[dict[str, Any]]:
+        """Every learner votes on every new item; the serving learner's vote is the answer.
+
+        Returns one answer per item, with ``duplicate`` for ids already answered with the same
+        features. Raises (changing nothing) on an id reused with other features or a feature the
+        space does not admit.
+        """
+        t = self.advance(t)
+        prints = [fingerprint(features) for _, features in items]
+        first: dict[str, int] = {}
+        fresh: list[int] = []
+        for index, (item_id, _) in enumerate(items):
+            fp = prints[index]
+            if item_id in first:
+                if prints[first[item_id]] != fp:
+                    raise ItemError(index, self._reused(item_id, "earlier in this batch"))
+                continue
+            first[item_id] = index
+            known = self.pending.get(item_id) or self.resolved.get(item_id)
+            if known is None:
+                fresh.append(index)
+            elif known.fp != fp or (isinstance(known, Resolved) and known.votes is None):
+                raise ItemError(index, self._reused(item_id, "before"))
+        encoded, panel_votes = self._encode([items[i][1] for i in fresh], fresh)
+        for index, enc, votes in zip(fresh, encoded, panel_votes, strict=True):
+            self.pending[items[index][0]] = Pending(t, enc, votes, self.epochs, prints[index])
+            for seat in self.seats:
+                seat.outstanding += 1
+            self.counts["predictions"] += 1
+        is_fresh = set(fresh)
+        out = []
+        for index, (item_id, _) in enumerate(items):
+            known = self.pending.get(item_id) or self.resolved[item_id]
+            assert known.votes is not None
+            out.append(self._answer(item_id, known.votes, duplicate=index not in is_fresh))
+        return out
+
+    def apply_feedback(self, t: float, items: Sequence[tuple[str, int]]) -> list[dict[str, Any]]:
+        """Apply labels in order; each gets a status: applied, duplicate, conflict, unknown,
+        expired. Only ``applied`` changes anything."""
+        t = self.advance(t)
+        out = []
+        for item_id, y in items:
+            p = self.pending.pop(item_id, None)
+            if p is None:
+                out.append(self._not_pending(item_id, y))
+                continue
+            wrong, updated = self._learn(t, item_id, p.enc, y, p)
+            delay = max(0.0, t - p.t)
+            self.delay_sum += delay
+            self.delay_buckets[_bucket(delay)] += 1
+            self.resolved[item_id] = Resolved("labelled", t, p.fp, y, p.votes, wrong, updated)
+            self.counts["labels"] += 1
+            out.append(self._outcome(item_id, "applied", wrong, updated))
+        self.advance(t)  # keeps the remembered ids within their bound
+        return out
+
+    def apply_examples(
+        self, t: float, items: Sequence[tuple[str, Features, int]]
+    ) -> list[dict[str, Any]]:
+        """Labelled items never predicted: every learner learns; no served mistake is counted."""
+        t = self.advance(t)
+        first: dict[str, int] = {}
+        fresh: list[int] = []
+        for index, (item_id, features, y) in enumerate(items):
+            fp = fingerprint(features)
+            if item_id in first:
+                _, f0, y0 = items[first[item_id]]
+                if fingerprint(f0) != fp or y0 != y:
+                    raise ItemError(index, self._reused(item_id, "earlier in this batch"))
+                continue
+            first[item_id] = index
+            if item_id in self.pending:
+                raise ItemError(
+                    index,
+                    Conflict(
+                        f"Item id {item_id!r} names a prediction waiting for its label; send "
+                        "its label as feedback instead.",
+                        field="id",
+                        rule="an id not already used for a prediction",
+                        value=item_id,
+                    ),
+                )
+            known = self.resolved.get(item_id)
+            if known is None:
+                fresh.append(index)
+            elif known.kind != "example" or known.fp != fp or known.label != y:
+                raise ItemError(index, self._reused(item_id, "before"))
+        encoded, _ = self._encode([items[i][1] for i in fresh], fresh)
+        done: dict[str, dict[str, Any]] = {}
+        for index, enc in zip(fresh, encoded, strict=True):
+            item_id, features, y = items[index]
+            wrong, updated = self._learn(t, item_id, enc, y, None)
+            fp = fingerprint(features)
+            self.resolved[item_id] = Resolved("example", t, fp, y, None, wrong, updated)
+            self.counts["examples"] += 1
+            done[item_id] = self._outcome(item_id, "applied", wrong, updated)
+        out = []
+        for item_id, _, _ in items:
+            if item_id in done:
+                out.append(done.pop(item_id))
+            else:
+                r = self.resolved[item_id]
+                out.append(self._outcome(item_id, "duplicate", r.wrong, r.updated))
+        self.advance(t)
+        return out
+
+    # -- the accounting step ---------------------------------------------------------------
+
+    def _learn(
+        self, t: float, item_id: str, enc: Encoded, y: int, p: Pending | None
+    ) -> tuple[int, int]:
+        wrong_bits = updated_bits = 0
+        served_wrong = p is not None and p.votes[self.serve_index] != y
+        for i, seat in enumerate(self.seats):
+            changed = False
+            if p is not None:
+                same_epoch = p.epochs[i] == seat.epoch
+                if same_epoch:
+                    seat.outstanding -= 1
+                vote_wrong = p.votes[i] != y
+                seat.observe_vote(vote_wrong, served_wrong, same_epoch)
+                changed = same_epoch and vote_wrong
+                wrong_bits |= vote_wrong << i
+            wrong, updated = seat.learn(item_id, enc, y)
+            if p is None:
+                wrong_bits |= wrong << i
+            updated_bits |= updated << i
+            alert = seat.settle(t, changed or updated, self.policy)
+            if alert is not None:
+                self.new_alerts.append(alert)
+                self.epochs = tuple(s.epoch for s in self.seats)
+        return wrong_bits, updated_bits
+
+    def _encode(
+        self, features: list[Features], indices: list[int]
+    ) -> tuple[list[Encoded], list[tuple[int, ...]]]:
+        """Encode the items and let every learner vote on them, all or nothing.
+
+        A learner may refuse an item the space accepts (Winnow reads values in [0, 1] only);
+        then, as when the space refuses one, the names this call admitted are taken back and
+        nothing has changed. Voting does not change a learner.
+        """
+        space = self.space
+        mark = len(space.names)
+        encoded: list[Encoded] = []
+        votes: list[tuple[int, ...]] = []
+        try:
+            for item in features:
+                encoded.append(space.encode(item))
+            for enc in encoded:
+                votes.append(tuple(seat.learner.predict(enc) for seat in self.seats))
+        except LearnerError as exc:
+            for name in space.names[mark:]:
+                del space.index[name]
+            del space.names[mark:]
+            where = len(votes) if len(encoded) == len(features) else len(encoded)
+            error = InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
+            raise ItemError(indices[where], error) from exc
+        return encoded, votes
+
+    # -- answers ---------------------------------------------------------------------------
+
+    def _answer(self, item_id: str, votes: tuple[int, ...], duplicate: bool) -> dict[str, Any]:
+        return {
+            "id": item_id,
+            "label": votes[self.serve_index],
+            "served_by": self.seats[self.serve_index].name,
+            "votes": {s.name: v for s, v in zip(self.seats, votes, strict=True)},
+            "duplicate": duplicate,
+        }
+
+    def _outcome(self, item_id: str, status: str, wrong: int, updated: int) -> dict[str, Any]:
+        return {
+            "id": item_id,
+            "status": status,
+            "learners": {
+                s.name: {"wrong": bool(wrong >> i & 1), "updated": bool(updated >> i & 1)}
+                for i, s in enumerate(self.seats)
+            },
+        }
+
+    def _not_pending(self, item_id: str, y: int) -> dict[str, Any]:
+        r = self.resolved.get(item_id)
+        if r is None:
+            message = f"No prediction with id {item_id!r} is known on stream {self.name!r}."
+            return {"id": item_id, "status": "unknown", "message": message}
+        if r.kind == "expired":
+            message = (
+                f"The prediction {item_id!r} expired: its label did not come within "
+                f"{self.label_wait:g} seconds. Send it as a labelled example instead."
+            )
+            return {"id": item_id, "status": "expired", "message": message}
+        if r.label == y:
+            return self._outcome(item_id, "duplicate", r.wrong, r.updated)
+        message = f"Item {item_id!r} was already labelled {r.label}; got {y}."
+        return {"id": item_id, "status": "conflict", "message": message}
+
+    def _reused(self, item_id: str, when: str) -> Conflict:
+        return Conflict(
+            f"Item id {item_id!r} was used {when} with other features or for another purpose; "
+            "an id names one item.",
+            field="id",
+            rule="an id names one item",
+            value=item_id,
+        )
+
+    # -- views -----------------------------------------------------------------------------
+
+    def describe(self) -> dict[str, Any]:
+        config = self.config
+        return {
+            "stream": self.name,
+            "features": config["features"],
+            "known_features": len(self.space),
+            "learners": [
+                {"name": s["name"], "kind": s["kind"], **s["params"]} for s in config["learners"]
+            ],
+            "serve": config["serve"],
+            "label_wait_seconds": self.label_wait,
+            "on_exceed": self.policy,
+            "near": config["near"],
+            "webhook": config["webhook"],
+            "created": self.created,
+            "pending": len(self.pending),
+        }
+
+    def ledger(self) -> dict[str, Any]:
+        seats = [seat.view(self.last_t) for seat in self.seats]
+        alerts = sorted((a for s in self.seats for a in s.alerts), key=lambda a: a["at"])
+        return {
+            "stream": self.name,
+            "serve": self.seats[self.serve_index].name,
+            "pending": len(self.pending),
+            "expired": self.counts["expired"],
+            "max_outstanding": max(s.max_outstanding for s in self.seats),
+            "alerts": alerts[-100:],
+            "learners": seats,
+        }
+
+    def compare(self) -> dict[str, Any]:
+        rows = []
+        for seat in self.seats:
+            ceiling = seat.learner.ceiling()
+            b, c = seat.only_this_wrong, seat.only_served_wrong
+            rows.append(
+                {
+                    "name": seat.name,
+                    "served_mistakes": seat.vote_wrong,
+                    "updates": seat.total_updates,
+                    "state": seat.state(ceiling),
+                    "compared": seat.compared,
+                    "only_this_wrong": b,
+                    "only_served_wrong": c,
+                    "p_value": mcnemar_exact(b, c),
+                }
+            )
+        rows.sort(key=lambda r: (r["served_mistakes"], r["name"]))
+        return {"serve": self.seats[self.serve_index].name, "learners": rows}
+
+    # -- plain data ------------------------------------------------------------------------
+
+    def to_state(self) -> dict[str, Any]:
+        """Everything the log has built, as JSON-safe data (never pickled)."""
+        return {
+            "version": 1,
+            "config": self.config,
+            "created": self.created,
+            "last_t": self.last_t,
+            "space": self.space.to_state(),
+            "seats": [seat.to_state() for seat in self.seats],
+            "pending": [
+                [
+                    item_id,
+                    p.t,
+                    list(p.enc.keys),
+                    None if p.enc.vals is None else list(p.enc.vals),
+                    list(p.votes),
+                    list(p.epochs),
+                    p.fp,
+                ]
+                for item_id, p in self.pending.items()
+            ],
+            "resolved": [[item_id, *r.to_list()] for item_id, r in self.resolved.items()],
+            "counts": dict(self.counts),
+            "delay": {"buckets": list(self.delay_buckets), "sum": self.delay_sum},
+        }
+
+    @classmethod
+    def from_state(
+        cls, state: Mapping[str, Any], *, history_points: int, max_remembered: int
+    ) -> Stream:
+        if state.get("version") != 1:
+            raise ValueError(f"unknown stream snapshot version {state.get('version')!r}")
+        stream = cls(
+            dict(state["config"]),
+            float(state["created"]),
+            history_points=history_points,
+            max_remembered=max_remembered,
+        )
+        stream.last_t = float(state["last_t"])
+        stream.space.adopt(state["space"]["names"])
+        for seat, seat_state in zip(stream.seats, state["seats"], strict=True):
+            seat.restore(seat_state, stream.space)
+        stream.epochs = tuple(s.epoch for s in stream.seats)
+        interned: dict[tuple[int, ...], tuple[int, ...]] = {stream.epochs: stream.epochs}
+        for item_id, t, keys, vals, votes, epochs, fp in state["pending"]:
+            enc = Encoded(
+                [int(k) for k in keys], None if vals is None else [float(v) for v in vals]
+            )
+            key = tuple(epochs)
+            stream.pending[item_id] = Pending(
+                float(t), enc, tuple(votes), interned.setdefault(key, key), fp
+            )
+        for item_id, *rest in state["resolved"]:
+            stream.resolved[item_id] = Resolved.from_list(rest)
+        stream.counts = {k: int(v) for k, v in state["counts"].items()}
+        stream.delay_buckets = [int(v) for v in state["delay"]["buckets"]]
+        stream.delay_sum = float(state["delay"]["sum"])
+        return stream
+
+
+def _bucket(delay: float) -> int:
+    for i, bound in enumerate(DELAY_BUCKETS):
+        if delay <= bound:
+            return i
+    return len(DELAY_BUCKETS)

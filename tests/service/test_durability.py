@@ -1,0 +1,256 @@
+"""Durability: a restart (clean or after a crash) replays to the ledger that was acknowledged."""
+
+from __future__ import annotations
+
+import random
+import shutil
+import sqlite3
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from service.store import FILE_NAME
+from tests.service.conftest import MakeApp
+from tests.service.harness import Clock, Running, running
+
+PANEL = [
+    {"name": "mono", "kind": "elimination"},
+    {"name": "neg", "kind": "elimination", "negations": True},
+    {"name": "perc", "kind": "perceptron", "margin": 0.5},
+    {"name": "pa", "kind": "passive-aggressive"},
+    {"name": "win", "kind": "winnow"},
+]
+
+
+def create(service: Running, name: str, features: Any = 12, **extra: Any) -> None:
+    body = {"stream": name, "features": features, "learners": PANEL, "label_wait_seconds": 50,
+            **extra}  # fmt: skip
+    response = service.post("/v1/streams", json=body)
+    assert response.status_code == 201, response.text
+
+
+def drive(service: Running, clock: Clock, name: str, seed: int, steps: int) -> None:
+    """A noisy stream: predicts, late and lost labels, repeats, examples, time passing."""
+    rng = random.Random(seed)
+    url = f"/v1/streams/{name}"
+    waiting: list[tuple[str, int]] = []
+    for step in range(steps):
+        flags = sorted({f"f{rng.randrange(8)}" for _ in range(rng.randrange(1, 5))})
+        label = int("f1" in flags and "f2" in flags) ^ (rng.random() < 0.1)
+        roll = rng.random()
+        if roll < 0.55:
+            item: Any = (
+                flags if rng.random() < 0.5 else {f: rng.choice([1, 0.5, 0.25]) for f in flags}
+            )
+            response = service.post(
+                f"{url}/predict", json={"id": f"{name}-{step}", "features": item}
+            )
+            assert response.status_code == 200, response.text
+            if rng.random() < 0.9:  # some labels never come
+                waiting.append((f"{name}-{step}", label))
+        elif roll < 0.8 and waiting:
+            item_id, y = waiting.pop(rng.randrange(len(waiting)))
+            response = service.post(f"{url}/feedback", json={"id": item_id, "label": y})
+            assert response.status_code in (200, 404, 410), response.text  # 404: forgotten
+            if rng.random() < 0.2:  # a retry
+                service.post(f"{url}/feedback", json={"id": item_id, "label": y})
+        elif roll < 0.9:
+            batch = [{"features": flags, "label": label}, {"features": flags[:1], "label": 0}]
+            assert service.post(f"{url}/examples", json={"items": batch}).status_code == 200
+        else:
+            clock.advance(rng.choice([1, 5, 20]))
+
+
+def observe(service: Running) -> dict[str, Any]:
+    """Everything the ledger shows, plus every learner's full state and the stored space."""
+    out: dict[str, Any] = {}
+    for name in sorted(service.registry.streams):
+        stream = service.registry.get(name)
+        out[name] = {
+            "ledger": service.get(f"/v1/streams/{name}/ledger").json(),
+            "compare": service.get(f"/v1/streams/{name}/compare").json(),
+            "describe": service.get(f"/v1/streams/{name}").json(),
+            "learners": [seat.learner.to_state(include_space=False) for seat in stream.seats],
+            "space": stream.space.to_state(),
+            "pending": sorted(stream.pending),
+            "resolved": sorted(stream.resolved),
+        }
+    return out
+
+
+def test_a_clean_restart_restores_the_exact_ledger(make_app: MakeApp, clock: Clock) -> None:
+    with running(make_app()) as service:
+        create(service, "north")
+        create(service, "south", features=[f"f{i}" for i in range(8)], on_exceed="restart")
+        drive(service, clock, "north", seed=1, steps=150)
+        drive(service, clock, "south", seed=2, steps=150)
+        before = observe(service)
+    # The shutdown wrote snapshots; the log after them is empty.
+    with running(make_app()) as service:
+        assert observe(service) == before
+
+
+def test_replay_from_snapshots_and_the_log_after_them(make_app: MakeApp, clock: Clock) -> None:
+    with running(make_app(snapshot_every_events=7)) as service:
+        create(service, "north")
+        drive(service, clock, "north", seed=3, steps=200)
+        before = observe(service)
+        store = service.registry.store
+        assert store.commits > 0
+    with running(make_app(snapshot_every_events=7)) as service:
+        assert observe(service) == before
+
+
+def crash_copy(data_dir: Path, target: Path) -> None:
+    """What a kill -9 leaves: the database and its WAL as committed, no shutdown snapshot."""
+    target.mkdir(parents=True)
+    for suffix in ("", "-wal"):
+        source = data_dir / (FILE_NAME + suffix)
+        if source.exists():
+            shutil.copy(source, target / (FILE_NAME + suffix))
+
+
+@pytest.mark.parametrize("snapshot_every", [10_000, 9])
+def test_after_a_crash_the_log_replays_to_the_acknowledged_ledger(
+    make_app: MakeApp, clock: Clock, data_dir: Path, tmp_path: Path, snapshot_every: int
+) -> None:
+    crashed = tmp_path / "crashed"
+    with running(make_app(snapshot_every_events=snapshot_every)) as service:
+        create(service, "north", on_exceed="restart")
+        drive(service, clock, "north", seed=4, steps=200)
+        acknowledged = observe(service)
+        crash_copy(data_dir, crashed)
+    with running(make_app(data_dir=crashed, snapshot_every_events=snapshot_every)) as service:
+        assert observe(service) == acknowledged
+
+
+def test_an_answer_waits_for_its_commit(service: Running) -> None:
+    create(service, "north")
+    store = service.registry.store
+    gate = threading.Event()
+    original = store._commit
+
+    def held(batch: Any) -> None:
+        gate.wait(10)
+        original(batch)
+
+    store._commit = held  # type: ignore[method-assign]
+    try:
+        outcome: dict[str, Any] = {}
+
+        def send() -> None:
+            outcome["response"] = service.post(
+                "/v1/streams/north/predict", json={"id": "held", "features": ["f1"]}
+            )
+
+        sender = threading.Thread(target=send)
+        sender.start()
+        deadline = time.monotonic() + 5
+        while "held" not in service.registry.get("north").pending and time.monotonic() < deadline:
+            time.sleep(0.01)
+        assert "held" in service.registry.get("north").pending  # applied ...
+        sender.join(0.3)
+        assert "response" not in outcome  # ... but not answered before the commit
+        gate.set()
+        sender.join(10)
+        assert outcome["response"].status_code == 200
+    finally:
+        gate.set()
+        store._commit = original  # type: ignore[method-assign]
+    rows = sqlite3.connect(service.registry.store.path).execute(
+        "SELECT count(*) FROM events WHERE body LIKE '%held%'"
+    )
+    assert rows.fetchone()[0] == 1
+
+
+def test_concurrent_writes_share_commits_and_replay_in_order(
+    make_app: MakeApp, data_dir: Path
+) -> None:
+    with running(make_app()) as service:
+        create(service, "north")
+        calls = [
+            (
+                "POST",
+                "/v1/streams/north/predict",
+                {"json": {"id": f"c{i}", "features": [f"f{i % 7}"]}},
+            )
+            for i in range(60)
+        ]
+        commits_before = service.registry.store.commits
+        responses = service.concurrently(calls)
+        assert all(r.status_code == 200 for r in responses)
+        commits = service.registry.store.commits - commits_before
+        labels = [
+            ("POST", "/v1/streams/north/feedback", {"json": {"id": f"c{i}", "label": i % 2}})
+            for i in range(60)
+        ]
+        assert all(r.status_code == 200 for r in service.concurrently(labels))
+        before = observe(service)
+        print(f"60 concurrent predicts took {commits} commits")
+    with running(make_app()) as service:
+        assert observe(service) == before
+
+
+def test_a_failed_store_answers_503_and_is_not_ready(service: Running) -> None:
+    create(service, "north")
+    store = service.registry.store
+
+    def broken(batch: Any) -> None:
+        raise sqlite3.OperationalError("disk I/O error")
+
+    store._commit = broken  # type: ignore[method-assign]
+    response = service.post("/v1/streams/north/predict", json={"features": ["f1"]})
+    assert response.status_code == 503
+    assert response.json()["error"]["field"] == "store"
+    assert service.post("/v1/streams/north/predict", json={"features": ["f2"]}).status_code == 503
+    assert service.get("/readyz").status_code == 503
+
+
+def test_nothing_is_pickled(make_app: MakeApp, clock: Clock, data_dir: Path) -> None:
+    """Every stored row is JSON text."""
+    import json
+
+    with running(make_app(snapshot_every_events=5)) as service:
+        create(service, "north")
+        drive(service, clock, "north", seed=5, steps=40)
+    conn = sqlite3.connect(data_dir / FILE_NAME)
+    rows = conn.execute("SELECT body FROM events UNION ALL SELECT body FROM snapshots").fetchall()
+    assert rows
+    for (body,) in rows:
+        assert isinstance(body, str)
+        json.loads(body)
+
+
+def test_snapshots_shorten_the_log(make_app: MakeApp, clock: Clock, data_dir: Path) -> None:
+    with running(make_app(snapshot_every_events=10, snapshot_interval_seconds=60)) as service:
+        create(service, "north")
+        for i in range(25):
+            service.post("/v1/streams/north/predict", json={"id": f"s{i}", "features": ["f1"]})
+        conn = sqlite3.connect(data_dir / FILE_NAME)
+        service.registry.store.barrier().result(5)
+        # 26 events (create + 25 predicts): snapshots at 10 and 20 leave the last 6 in the log.
+        assert conn.execute("SELECT count(*) FROM events").fetchone()[0] == 6
+        # A changed stream is snapshotted by the sweeper once the interval has passed.
+        service.registry.sweep()
+        service.registry.store.barrier().result(5)
+        assert conn.execute("SELECT count(*) FROM events").fetchone()[0] == 6
+        clock.advance(61)
+        service.registry.sweep()
+        service.registry.store.barrier().result(5)
+        assert conn.execute("SELECT count(*) FROM events").fetchone()[0] == 0
+        (seq,) = conn.execute("SELECT seq FROM snapshots WHERE stream = 'north'").fetchone()
+        assert seq == service.registry.get("north").last_seq
+
+
+@pytest.mark.parametrize(("setting", "pragma"), [("full", 2), ("normal", 1)])
+def test_the_durability_setting_sets_sqlite_synchronous(
+    make_app: MakeApp, setting: str, pragma: int
+) -> None:
+    # SQLite's PRAGMA synchronous reads 2 for FULL and 1 for NORMAL (sqlite.org/pragma.html).
+    with running(make_app(durability=setting)) as service:
+        conn = service.registry.store._conn
+        assert conn.execute("PRAGMA synchronous").fetchone()[0] == pragma
+        assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
