@@ -3,6 +3,7 @@ PYTHON ?= $(shell command -v python3.11 || command -v python3)
 VENV ?= .venv
 BIN := $(VENV)/bin
 ONCE ?=
+DEMO_ARGS ?=
 
 .PHONY: test check demo bench clean
 
@@ -21,7 +22,7 @@ test: check
 	$(BIN)/pytest -q
 
 demo: $(BIN)/.installed
-	$(BIN)/mistake-ledger demo $(if $(ONCE),--once,)
+	$(BIN)/mistake-ledger demo $(if $(ONCE),--once,) $(DEMO_ARGS)
 
 bench: $(BIN)/.installed
 	$(BIN)/python -m benchmarks.learners
