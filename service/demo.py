@@ -14,6 +14,7 @@ from ``--scenario DIR``; regenerate them with ``python -m demo_data.generate``.
 from __future__ import annotations
 
 import json
+import signal
 import socket
 import subprocess
 import sys
@@ -217,6 +218,10 @@ def report(
     return alerts
 
 
+def _interrupt(signum: int, frame: object) -> None:
+    raise KeyboardInterrupt
+
+
 @click.command("demo")
 @click.option("--once", is_flag=True, help="Stop the service and exit after the replay.")
 @click.option(
@@ -273,6 +278,8 @@ def demo_command(
             "port, or --port 0 for any free one."
         )
     data_dir.mkdir(parents=True, exist_ok=True)
+    # A SIGTERM (e.g. from a process manager) stops the child service too, as Ctrl-C does.
+    signal.signal(signal.SIGTERM, _interrupt)
     service = ServiceProcess(port, data_dir, data_dir / "demo-service.log")
     started = time.monotonic()
     try:
