@@ -36,7 +36,8 @@ def make(kind: str, **params: Any) -> Learner:
             rule="required",
             value=None,
         )
-    accepted = set(inspect.signature(cls.__init__).parameters) - {"self"}
+    signature = inspect.signature(cls.__init__).parameters
+    accepted = set(signature) - {"self"}
     unknown = sorted(set(params) - accepted)
     if unknown:
         raise ParameterError(
@@ -46,6 +47,18 @@ def make(kind: str, **params: Any) -> Learner:
             field=unknown[0],
             rule="one of " + ", ".join(sorted(accepted)),
             value=unknown[0],
+        )
+    missing = [
+        name
+        for name in sorted(accepted - set(params))
+        if signature[name].default is inspect.Parameter.empty
+    ]
+    if missing:
+        raise ParameterError(
+            f"A {kind} learner needs a {missing[0]!r} parameter; it has no default.",
+            field=missing[0],
+            rule="required",
+            value=None,
         )
     return cls(**params)
 

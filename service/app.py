@@ -187,12 +187,13 @@ def create_app(
 
     BEARER = Depends(bearer)  # noqa: N806
 
-    def who(credentials: HTTPAuthorizationCredentials | None = BEARER) -> Principal:
+    # Dependencies are coroutines: plain functions would each cost a hop to the thread pool.
+    async def who(credentials: HTTPAuthorizationCredentials | None = BEARER) -> Principal:
         return guard.identify(None if credentials is None else credentials.credentials)
 
     WHO = Depends(who)  # noqa: N806
 
-    def ready() -> None:
+    async def ready() -> None:
         if not streams.ready:
             raise Unavailable(
                 "The service is starting or stopping; its store is not open.",
@@ -227,7 +228,7 @@ def create_app(
         guard.stream(principal, stream)
         return JSONResponse(streams.describe(stream))
 
-    @api.delete("/streams/{stream}")
+    @api.delete("/streams/{stream}", response_model=schemas.StreamDeleted)
     async def delete_stream(stream: str, principal: Principal = WHO) -> JSONResponse:
         guard.admin(principal, "delete streams")
         future = streams.delete(stream)
@@ -298,7 +299,15 @@ def create_app(
 
     app.include_router(api)
 
-    @app.get("/metrics", response_class=Response)
+    @app.get(
+        "/metrics",
+        response_class=Response,
+        responses={
+            200: {"content": {"text/plain": {"schema": {"type": "string"}}}},
+            401: {"model": schemas.ErrorBody},
+            403: {"model": schemas.ErrorBody},
+        },
+    )
     async def metrics(principal: Principal = WHO) -> Response:
         guard.metrics(principal)
         return Response(generate_latest(metrics_registry), media_type=CONTENT_TYPE_LATEST)
@@ -307,7 +316,9 @@ def create_app(
     async def healthz() -> dict[str, str]:
         return {"status": "alive"}
 
-    @app.get("/readyz")
+    @app.get(
+        "/readyz", response_model=schemas.Readiness, responses={503: {"model": schemas.ErrorBody}}
+    )
     async def readyz() -> JSONResponse:
         if not streams.ready or store.failed is not None:
             reason = "the store failed" if store.failed is not None else "not open yet"

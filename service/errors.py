@@ -24,6 +24,7 @@ from __future__ import annotations
 import json
 import logging
 import math
+import re
 from typing import Any
 
 from fastapi import FastAPI, Request
@@ -90,10 +91,22 @@ class Unavailable(ServiceError):
     code = "unavailable"
 
 
+def _text(value: str) -> str:
+    """``value`` as Unicode text that encodes as UTF-8 (lone surrogates as backslash escapes)."""
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError:
+        return value.encode("utf-8", "backslashreplace").decode("utf-8")
+    return value
+
+
 def plain_value(value: Any) -> Any:
     """A received value as JSON-safe data for the error shape (non-finite numbers as text)."""
-    if value is None or isinstance(value, bool | int | str):
-        return value if not isinstance(value, str) or len(value) <= 200 else value[:197] + "..."
+    if isinstance(value, str):
+        value = _text(value)
+        return value if len(value) <= 200 else value[:197] + "..."
+    if value is None or isinstance(value, bool | int):
+        return value
     if isinstance(value, float):
         return (
             value
@@ -102,27 +115,29 @@ def plain_value(value: Any) -> Any:
         )
     if isinstance(value, list | dict):
         try:
-            text = json.dumps(value, allow_nan=False)
+            # ensure_ascii=False: a lone surrogate anywhere fails here and falls back to repr
+            text = json.dumps(value, allow_nan=False, ensure_ascii=False)
+            text.encode("utf-8")
         except (TypeError, ValueError):
             text = ""
         if text and len(text) <= 200:
             return value
-    text = repr(value)
+    text = _text(repr(value))
     return text if len(text) <= 200 else text[:197] + "..."
 
 
 def error_body(
     status: int, code: str, message: str, field: str = "", rule: str = "", value: Any = None
 ) -> dict[str, Any]:
-    """The one error shape."""
+    """The one error shape (every string in it encodes as UTF-8, whatever the client sent)."""
     return {
         "error": {
             "status": status,
             "code": code,
-            "field": field,
-            "rule": rule,
+            "field": _text(field),
+            "rule": _text(rule),
             "value": plain_value(value),
-            "message": message,
+            "message": _text(message),
         }
     }
 
@@ -151,6 +166,16 @@ def field_path(loc: tuple[Any, ...] | list[Any]) -> str:
     return out
 
 
+_PLAIN_KEY = re.compile(r"[A-Za-z_][A-Za-z0-9_-]*")
+
+
+def key_path(prefix: str, key: str) -> str:
+    """A client's key below ``prefix``: '.name' when plain, else '["as JSON"]' (e.g. '[""]')."""
+    if _PLAIN_KEY.fullmatch(key):
+        return f"{prefix}.{key}" if prefix else key
+    return f"{prefix}[{json.dumps(key, ensure_ascii=False)}]"
+
+
 def from_validation(exc: RequestValidationError) -> ServiceError:
     """The first problem of a request validation as an InvalidInput."""
     errors = list(exc.errors())
@@ -166,10 +191,14 @@ def from_validation(exc: RequestValidationError) -> ServiceError:
         message = f"The body is not valid JSON: {ctx.get('error', 'decode error')}."
         return InvalidInput(message, field="body", rule=rule, value=None)
     if kind == "missing":
-        rule = "required"
-        message = f"The field {field!r} is required."
-        return InvalidInput(message, field=field, rule=rule, value=None)
+        if not field:  # no body at all
+            message = "This request needs a JSON body; none was sent."
+            return InvalidInput(message, field="body", rule="required", value=None)
+        return InvalidInput(f"The field {field!r} is required.", field=field, rule="required")
     if kind == "extra_forbidden":
+        # The last part of the location is the client's key, whatever characters it holds.
+        loc = list(first.get("loc", ()))
+        field = key_path(field_path(loc[:-1]), str(loc[-1])) if loc else "body"
         message = f"The field {field!r} is not one this request takes."
         return InvalidInput(message, field=field, rule="known field", value=value)
     if ctx.get("rule"):
@@ -177,9 +206,17 @@ def from_validation(exc: RequestValidationError) -> ServiceError:
         message = str(first.get("msg"))
     else:
         rule = _rule_of(kind, ctx, str(first.get("msg", "valid value")))
-        shown = plain_value(value)
-        message = f"The field {field or 'body'!r} must be {rule}; got {shown!r}."
+        message = f"The field {field or 'body'!r} must be {rule}; got {_as_json(value)}."
     return InvalidInput(message, field=field or "body", rule=rule, value=value)
+
+
+def _as_json(value: Any) -> str:
+    """A received value as the client wrote it (JSON), for messages: null, not None."""
+    shown = plain_value(value)
+    try:
+        return json.dumps(shown, ensure_ascii=False)
+    except (TypeError, ValueError):
+        return repr(shown)
 
 
 _BOUNDS = {"greater_than": ">", "greater_than_equal": ">=", "less_than": "<",
@@ -231,15 +268,22 @@ def install(app: FastAPI) -> None:
 
     @app.exception_handler(StarletteHTTPException)
     async def _http(request: Request, exc: StarletteHTTPException) -> JSONResponse:
-        code = {404: "not_found", 405: "method_not_allowed"}.get(exc.status_code, "http_error")
-        message = str(exc.detail)
-        if exc.status_code == 404:
-            message = f"No route {request.url.path!r}."
-        return JSONResponse(
-            error_body(exc.status_code, code, message, "path", "known route", request.url.path),
-            status_code=exc.status_code,
-            headers=getattr(exc, "headers", None),
-        )
+        status = exc.status_code
+        path = request.url.path
+        if status == 404:
+            body = error_body(404, "not_found", f"No route {path!r}.", "path", "known route", path)
+        elif status == 405:
+            body = error_body(
+                405,
+                "method_not_allowed",
+                f"The route {path!r} does not take {request.method}.",
+                "method",
+                "a method the route takes",
+                request.method,
+            )
+        else:  # e.g. FastAPI's 400 for a body it could not read
+            body = error_body(status, "http_error", str(exc.detail), "body", "readable request")
+        return JSONResponse(body, status_code=status, headers=getattr(exc, "headers", None))
 
     @app.exception_handler(Exception)
     async def _unexpected(request: Request, exc: Exception) -> JSONResponse:

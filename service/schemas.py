@@ -23,6 +23,8 @@ from pydantic import (
 )
 from pydantic_core import PydanticCustomError
 
+from learners import registry as learner_registry
+
 STREAM_PATTERN = r"^[a-z0-9][a-z0-9_.-]{0,63}$"
 NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$"
 ID_MAX = 128
@@ -41,9 +43,58 @@ class NonFinite:
         return self.text
 
 
+_SURROGATE_ESCAPE = re.compile(r"\\u[dD][89a-fA-F]")
+
+
 def strict_json_loads(data: bytes | str) -> Any:
-    """Parse JSON, keeping NaN/Infinity as :class:`NonFinite` so validation can name them."""
-    return json.loads(data, parse_constant=NonFinite)
+    """Parse JSON, keeping NaN/Infinity as :class:`NonFinite` so validation can name them.
+
+    Every way a body can fail to be JSON text raises :class:`json.JSONDecodeError` (which the
+    app reports as a 422 on the field ``body``): besides syntax errors, nesting too deep for the
+    parser, integers with more digits than Python converts, and strings holding a lone UTF-16
+    surrogate escape such as ``"\\ud800"`` (not Unicode text: it could never be echoed back).
+    """
+    doc = data if isinstance(data, str) else ""
+    try:
+        parsed = json.loads(data, parse_constant=NonFinite)
+    except json.JSONDecodeError:
+        raise
+    except RecursionError as exc:
+        raise json.JSONDecodeError("arrays or objects are nested too deeply", doc, 0) from exc
+    except ValueError as exc:  # an integer literal over Python's int conversion limit
+        reason = str(exc).split(":")[0]
+        raise json.JSONDecodeError(f"a number is too long to read ({reason})", doc, 0) from exc
+    if isinstance(data, str) and _SURROGATE_ESCAPE.search(data) is not None:
+        bad = _lone_surrogate(parsed)
+        if bad is not None:
+            message = f"the string {_shown(bad)} holds a lone surrogate escape (not Unicode text)"
+            raise json.JSONDecodeError(message, doc, 0)
+    return parsed
+
+
+def _lone_surrogate(value: Any) -> str | None:
+    """The first string (key or value) in parsed JSON that holds a lone surrogate, if any."""
+    stack = [value]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, str):
+            if not _is_text(item):
+                return item
+        elif isinstance(item, dict):
+            stack.extend(item.keys())
+            stack.extend(item.values())
+        elif isinstance(item, list):
+            stack.extend(item)
+    return None
+
+
+def _is_text(value: str) -> bool:
+    """True when ``value`` is Unicode text (no lone surrogates), i.e. encodes as UTF-8."""
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
 
 
 def contains_non_finite(value: Any) -> bool:
@@ -74,6 +125,8 @@ def rule_error(
 
 
 def _shown(value: Any) -> str:
+    if isinstance(value, float) and not math.isfinite(value):
+        return "NaN" if math.isnan(value) else ("Infinity" if value > 0 else "-Infinity")
     text = repr(value)
     return text if len(text) <= 80 else text[:77] + "..."
 
@@ -140,13 +193,23 @@ def check_label(value: Any) -> int:
     )
 
 
+# A control character: C0, DEL or C1. Ids are printable: none of these (the document's pattern).
+_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
+ID_PATTERN = r"^[^\x00-\x1f\x7f-\x9f]*$"
+
+
 def check_id(value: Any) -> str:
-    """An item id: a string of 1 to 128 printable characters."""
-    if not isinstance(value, str) or not 1 <= len(value) <= ID_MAX or not value.isprintable():
+    """An item id: a string of 1 to 128 printable characters (no control characters)."""
+    if (
+        not isinstance(value, str)
+        or not 1 <= len(value) <= ID_MAX
+        or _CONTROL.search(value) is not None
+        or not _is_text(value)
+    ):
         raise rule_error(
             f"string of 1 to {ID_MAX} printable characters",
-            f"An item id must be a string of 1 to {ID_MAX} printable characters; "
-            f"got {_shown(value)}.",
+            f"An item id must be a string of 1 to {ID_MAX} printable characters (no control "
+            f"characters); got {_shown(value)}.",
         )
     return value
 
@@ -155,7 +218,8 @@ def check_pattern(pattern: str, what: str) -> Any:
     compiled = re.compile(pattern)
 
     def check(value: Any) -> str:
-        if not isinstance(value, str) or not compiled.match(value):
+        # fullmatch: "$" alone would also let a trailing newline through ("abc\n").
+        if not isinstance(value, str) or not compiled.fullmatch(value):
             raise rule_error(
                 f"matches {pattern}", f"A {what} must match {pattern}; got {_shown(value)}."
             )
@@ -202,14 +266,34 @@ def check_finite(value: Any) -> Any:
     return value
 
 
-Features = Annotated[dict[str, float] | list[str], BeforeValidator(check_features)]
+# The JSON Schema of a feature or flag name (1 to FEATURE_NAME_MAX characters).
+_FEATURE_NAME = {"type": "string", "minLength": 1, "maxLength": FEATURE_NAME_MAX}
+
+Features = Annotated[
+    dict[str, float] | list[str],
+    BeforeValidator(check_features),
+    WithJsonSchema(
+        {
+            "anyOf": [
+                {
+                    "type": "object",
+                    "propertyNames": _FEATURE_NAME,
+                    "additionalProperties": {"type": "number"},
+                },
+                {"type": "array", "items": _FEATURE_NAME, "uniqueItems": True},
+            ]
+        }
+    ),
+]
 Label = Annotated[
     int,
     BeforeValidator(check_label),
     WithJsonSchema({"anyOf": [{"type": "integer", "enum": [0, 1]}, {"type": "boolean"}]}),
 ]
 ItemId = Annotated[
-    str, BeforeValidator(check_id), WithJsonSchema({"type": "string", "minLength": 1})
+    str,
+    BeforeValidator(check_id),
+    WithJsonSchema({"type": "string", "minLength": 1, "maxLength": ID_MAX, "pattern": ID_PATTERN}),
 ]
 StreamId = Annotated[
     str,
@@ -229,7 +313,7 @@ SpaceSpec = Annotated[
         {
             "anyOf": [
                 {"type": "integer", "minimum": 1},
-                {"type": "array", "items": {"type": "string", "minLength": 1}, "minItems": 1},
+                {"type": "array", "items": _FEATURE_NAME, "minItems": 1, "uniqueItems": True},
             ]
         }
     ),
@@ -243,19 +327,44 @@ class _Strict(BaseModel):
 # -- requests -------------------------------------------------------------------------------
 
 
+def _kinds_text() -> str:
+    parts = []
+    for kind in sorted(learner_registry.KINDS):
+        params = ", ".join(learner_registry.describe(kind)["params"]) or "none"
+        parts.append(f"{kind} ({params})")
+    return "; ".join(parts)
+
+
 class LearnerSpec(BaseModel):
     """One learner of a panel: a name unique in the stream, a kind, and its parameters inline."""
 
-    model_config = ConfigDict(extra="allow", allow_inf_nan=False)
+    model_config = ConfigDict(
+        extra="allow",
+        allow_inf_nan=False,
+        json_schema_extra={
+            "description": "One learner of a panel: a name unique in the stream, a kind, and "
+            "the kind's parameters inline (each checked by the learner, which names the rule "
+            "it breaks). Parameters by kind: " + _kinds_text() + "."
+        },
+    )
 
     name: LearnerName
-    kind: Annotated[str, Field(min_length=1, max_length=64)]
+    # Checked by the learner registry (its error names the known kinds); documented as the list.
+    kind: Annotated[
+        str,
+        Field(min_length=1, max_length=64),
+        WithJsonSchema({"type": "string", "enum": sorted(learner_registry.KINDS)}),
+    ]
 
     def params(self) -> dict[str, Any]:
         return dict(self.model_extra or {})
 
 
 class StreamCreate(_Strict):
+    """A new stream. Beyond this schema: learner names are unique, ``serve`` names one of them,
+    ``webhook`` starts with an allowed prefix of the settings, and the limits on streams and
+    learners per stream hold."""
+
     stream: StreamId
     features: SpaceSpec
     learners: Annotated[list[LearnerSpec], Field(min_length=1)]
@@ -294,6 +403,51 @@ def _single_or_batch(model: Any, needed: tuple[str, ...], optional: tuple[str, .
     return model
 
 
+def _without_null(prop: dict[str, Any]) -> dict[str, Any]:
+    """A property's JSON Schema without its ``null`` alternative (for a required field)."""
+    variants = [v for v in prop.get("anyOf", []) if v != {"type": "null"}]
+    if not variants or len(variants) == len(prop.get("anyOf", [])):
+        return prop
+    rest = {k: v for k, v in prop.items() if k != "anyOf"}
+    return {**rest, **variants[0]} if len(variants) == 1 else {**rest, "anyOf": variants}
+
+
+def _single_or_batch_schema(needed: tuple[str, ...], optional: tuple[str, ...]) -> Any:
+    """The JSON Schema of a single-or-batch body: exactly the two shapes validation accepts.
+
+    One item: its ``needed`` fields (not null) and ``optional`` ones, ``items`` absent or null.
+    A batch: a non-empty ``items``, the single fields absent or null.
+    """
+
+    def rewrite(schema: dict[str, Any]) -> None:
+        props = schema.pop("properties")
+        for key in ("required", "type", "additionalProperties"):
+            schema.pop(key, None)
+        single = {name: _without_null(props[name]) for name in needed}
+        single.update({name: props[name] for name in optional})
+        single["items"] = {"type": "null"}
+        batch: dict[str, Any] = {name: {"type": "null"} for name in (*needed, *optional)}
+        batch["items"] = {**_without_null(props["items"]), "minItems": 1}
+        schema["anyOf"] = [
+            {
+                "type": "object",
+                "title": "One item",
+                "properties": single,
+                "required": list(needed),
+                "additionalProperties": False,
+            },
+            {
+                "type": "object",
+                "title": "A batch",
+                "properties": batch,
+                "required": ["items"],
+                "additionalProperties": False,
+            },
+        ]
+
+    return rewrite
+
+
 class PredictItem(_Strict):
     id: ItemId | None = None
     features: Features
@@ -301,6 +455,8 @@ class PredictItem(_Strict):
 
 class PredictRequest(_Strict):
     """One item (``id``?, ``features``) or a batch in ``items``."""
+
+    model_config = ConfigDict(json_schema_extra=_single_or_batch_schema(("features",), ("id",)))
 
     id: ItemId | None = None
     features: Features | None = None
@@ -318,6 +474,8 @@ class FeedbackItem(_Strict):
 
 class FeedbackRequest(_Strict):
     """One label (``id``, ``label``) or a batch in ``items``."""
+
+    model_config = ConfigDict(json_schema_extra=_single_or_batch_schema(("id", "label"), ()))
 
     id: ItemId | None = None
     label: Label | None = None
@@ -337,6 +495,10 @@ class ExampleItem(_Strict):
 class ExampleRequest(_Strict):
     """One labelled item (``id``?, ``features``, ``label``) or a batch in ``items``."""
 
+    model_config = ConfigDict(
+        json_schema_extra=_single_or_batch_schema(("features", "label"), ("id",))
+    )
+
     id: ItemId | None = None
     features: Features | None = None
     label: Label | None = None
@@ -350,17 +512,53 @@ class ExampleRequest(_Strict):
 # -- responses (documentation of what the routes return) ---------------------------------
 
 
+ERROR_CODES = (
+    "invalid_value",
+    "too_large",
+    "unauthorized",
+    "forbidden",
+    "not_found",
+    "expired",
+    "conflict",
+    "unavailable",
+    "method_not_allowed",
+    "http_error",
+    "internal",
+)
+
+
 class ErrorDetail(BaseModel):
-    status: int
-    code: str
+    """The one error shape: the HTTP status again, a code, the field, the rule it breaks, the
+    value received (JSON-safe; null when absent) and a sentence naming all three."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    status: Annotated[int, Field(ge=400, le=599)]
+    code: Annotated[str, WithJsonSchema({"type": "string", "enum": list(ERROR_CODES)})]
     field: str
     rule: str
-    value: Any = None
-    message: str
+    value: Any = Field(description="the value received, or null")
+    message: Annotated[str, Field(min_length=1)]
 
 
 class ErrorBody(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
     error: ErrorDetail
+
+
+class StreamDeleted(BaseModel):
+    stream: str
+    deleted: Literal[True]
+
+
+class Health(BaseModel):
+    status: Literal["alive"]
+
+
+class Readiness(BaseModel):
+    status: Literal["ready"]
+    streams: int
 
 
 class LearnerDescription(BaseModel):
