@@ -17,12 +17,11 @@ both predicted and labelled, from which :func:`mcnemar_exact` gives the exact Mc
 from __future__ import annotations
 
 import math
-from collections import deque
 from fractions import Fraction
 from typing import Any
 
 import learners
-from learners import Ceiling, FeatureSpace, Learner
+from learners import Ceiling, FeatureSpace, Learner, standing
 
 EVIDENCE = 8  # ids kept as evidence for an alert
 MAX_ALERTS = 50  # alerts kept per seat
@@ -104,7 +103,7 @@ class Seat:
         self.served_mistakes = 0
         self.outstanding = 0
         self.max_outstanding = 0
-        self.recent_wrong: deque[str] = deque(maxlen=EVIDENCE)
+        self.recent_wrong: list[str] = []  # the last EVIDENCE ids (a list: small per seat)
         self.alerted: str | None = None
         self.history: list[list[Any]] = []
 
@@ -123,7 +122,7 @@ class Seat:
         return (1 + self.max_outstanding) * value
 
     def state(self, ceiling: Ceiling) -> str:
-        return learners.standing(self.count(ceiling), ceiling, self.learner.contradicted, self.near)
+        return standing(self.count(ceiling), ceiling, self.learner.contradicted, self.near)
 
     def observe_vote(self, vote_wrong: bool, served_wrong: bool, same_epoch: bool) -> None:
         """A labelled prediction: count the comparison, and the served mistake if this epoch's."""
@@ -139,23 +138,34 @@ class Seat:
 
     def learn(self, item_id: str, enc: Any, y: int) -> tuple[bool, bool]:
         """Let the learner learn one label; return (hypothesis was wrong, it updated)."""
-        before = self.learner.mistakes
-        updated = self.learner.learn(enc, y)
-        wrong = self.learner.mistakes > before
+        learner = self.learner
+        before = learner.mistakes
+        updated = learner.learn(enc, y)
+        wrong = learner.mistakes > before
         if updated:
             self.total_updates += 1
-            self.max_outstanding = max(self.max_outstanding, self.outstanding)
+            if self.outstanding > self.max_outstanding:
+                self.max_outstanding = self.outstanding
         if wrong:
-            self.recent_wrong.append(item_id)
+            recent = self.recent_wrong
+            recent.append(item_id)
+            if len(recent) > EVIDENCE:
+                del recent[0]
         return wrong, updated
 
     def settle(self, t: float, changed: bool, policy: str) -> dict[str, Any] | None:
-        """After a label: record history, and raise an alert on reaching exceeded/contradicted."""
-        ceiling = self.learner.ceiling()
+        """After a label: record history, and raise an alert on reaching exceeded/contradicted.
+
+        The ceiling is read once per label (its live inputs may move on any label) and serves
+        both the history point and the state.
+        """
+        learner = self.learner
+        ceiling = learner.ceiling()
         if changed:
             self._point(t, ceiling)
-        state = self.state(ceiling)
-        if state not in ("exceeded", "contradicted"):
+        count = learner.updates if ceiling.counts == "updates" else learner.mistakes
+        state = standing(count, ceiling, learner.contradicted, self.near)
+        if state != "exceeded" and state != "contradicted":
             self.alerted = None
             return None
         if self.alerted == state:
@@ -166,7 +176,7 @@ class Seat:
             "epoch": self.epoch,
             "state": state,
             "at": t,
-            "count": self.count(ceiling),
+            "count": count,
             "ceiling": finite_or_none(ceiling.value),
             "evidence": list(self.recent_wrong),
             "policy": policy,
@@ -267,7 +277,7 @@ class Seat:
         self.served_mistakes = int(state["served_mistakes"])
         self.outstanding = int(state["outstanding"])
         self.max_outstanding = int(state["max_outstanding"])
-        self.recent_wrong = deque(state["recent_wrong"], maxlen=EVIDENCE)
+        self.recent_wrong = list(state["recent_wrong"])[-EVIDENCE:]
         self.alerted = state["alerted"]
         self.history = [list(p) for p in state["history"]]
         self.past = list(state["past"])

@@ -23,6 +23,7 @@ import json
 import threading
 from collections import OrderedDict
 from collections.abc import Mapping, Sequence
+from json.encoder import encode_basestring_ascii as _quote  # what json.dumps uses
 from typing import Any
 
 from learners import Encoded, FeatureSpace, LearnerError
@@ -30,6 +31,8 @@ from service.accounting import Seat, mcnemar_exact
 from service.errors import Conflict, InvalidInput
 
 Features = Mapping[str, float] | Sequence[str]
+
+VIEW_CACHE = 64  # distinct vote / outcome views kept per stream
 
 # Label delay histogram buckets in seconds (one second to thirty days).
 DELAY_BUCKETS = (
@@ -49,12 +52,33 @@ DELAY_BUCKETS = (
 
 
 def fingerprint(features: Features) -> str:
-    """A digest of an item that does not depend on the form: {"a": 1} and ["a"] are equal."""
+    """A digest of an item that does not depend on the form: {"a": 1} and ["a"] are equal.
+
+    The digest is of ``json.dumps(sorted((name, float(value)) for the non-zero values))``; stored
+    states keep it, so it must not change. The common forms (a list of string names, a dict of
+    string names to finite numbers) build that same text without the general encoder.
+    """
+    try:
+        if type(features) is list:
+            text = "[" + ", ".join([f"[{_quote(k)}, 1.0]" for k in sorted(features)]) + "]"
+        elif type(features) is dict:
+            pairs = sorted([(k, float(v)) for k, v in features.items() if v != 0])
+            text = "[" + ", ".join([f"[{_quote(k)}, {v!r}]" for k, v in pairs]) + "]"
+            if "n" in text and ("nan]" in text or "inf]" in text):
+                text = _fingerprint_text(features)  # json writes NaN/Infinity, not nan/inf
+        else:
+            text = _fingerprint_text(features)
+    except TypeError:  # a name that is not a string: the general form decides
+        text = _fingerprint_text(features)
+    return hashlib.blake2b(text.encode(), digest_size=12).hexdigest()
+
+
+def _fingerprint_text(features: Features) -> str:
     if isinstance(features, Mapping):
         pairs = sorted((str(k), float(v)) for k, v in features.items() if v != 0)
     else:
         pairs = sorted((str(k), 1.0) for k in features)
-    return hashlib.blake2b(json.dumps(pairs).encode(), digest_size=12).hexdigest()
+    return json.dumps(pairs)
 
 
 class ItemError(Exception):
@@ -141,6 +165,10 @@ class Stream:
             for spec in config["learners"]
         ]
         self.serve_index = [s.name for s in self.seats].index(config["serve"])
+        self.serve_name: str = config["serve"]
+        # Per-learner views of votes and of outcomes shared by the answers (see _answer).
+        self._vote_views: dict[tuple[int, ...], dict[str, int]] = {}
+        self._outcome_views: dict[tuple[int, int], dict[str, Any]] = {}
         self.epochs = tuple(s.epoch for s in self.seats)
         self.pending: OrderedDict[str, Pending] = OrderedDict()
         self.resolved: OrderedDict[str, Resolved] = OrderedDict()
@@ -229,17 +257,27 @@ class Stream:
             elif known.fp != fp or (isinstance(known, Resolved) and known.votes is None):
                 raise ItemError(index, self._reused(item_id, "before"))
         encoded, panel_votes = self._encode([items[i][1] for i in fresh], fresh)
+        pending, epochs = self.pending, self.epochs
+        fresh_votes: dict[int, tuple[int, ...]] = {}
         for index, enc, votes in zip(fresh, encoded, panel_votes, strict=True):
-            self.pending[items[index][0]] = Pending(t, enc, votes, self.epochs, prints[index])
+            # The bare indices only: the views the learners built are rebuilt at label time,
+            # so a waiting prediction costs little memory.
+            bare = Encoded(enc.keys, enc.vals)
+            pending[items[index][0]] = Pending(t, bare, votes, epochs, prints[index])
+            fresh_votes[index] = votes
+        if fresh:
             for seat in self.seats:
-                seat.outstanding += 1
-            self.counts["predictions"] += 1
-        is_fresh = set(fresh)
+                seat.outstanding += len(fresh)
+            self.counts["predictions"] += len(fresh)
         out = []
         for index, (item_id, _) in enumerate(items):
-            known = self.pending.get(item_id) or self.resolved[item_id]
+            answered = fresh_votes.get(index)
+            if answered is not None:
+                out.append(self._answer(item_id, answered, duplicate=False))
+                continue
+            known = pending.get(item_id) or self.resolved[item_id]
             assert known.votes is not None
-            out.append(self._answer(item_id, known.votes, duplicate=index not in is_fresh))
+            out.append(self._answer(item_id, known.votes, duplicate=True))
         return out
 
     def apply_feedback(self, t: float, items: Sequence[tuple[str, int]]) -> list[dict[str, Any]]:
@@ -267,13 +305,14 @@ class Stream:
     ) -> list[dict[str, Any]]:
         """Labelled items never predicted: every learner learns; no served mistake is counted."""
         t = self.advance(t)
+        prints = [fingerprint(features) for _, features, _ in items]
         first: dict[str, int] = {}
         fresh: list[int] = []
-        for index, (item_id, features, y) in enumerate(items):
-            fp = fingerprint(features)
+        for index, (item_id, _, y) in enumerate(items):
+            fp = prints[index]
             if item_id in first:
-                _, f0, y0 = items[first[item_id]]
-                if fingerprint(f0) != fp or y0 != y:
+                earlier = first[item_id]
+                if prints[earlier] != fp or items[earlier][2] != y:
                     raise ItemError(index, self._reused(item_id, "earlier in this batch"))
                 continue
             first[item_id] = index
@@ -293,13 +332,12 @@ class Stream:
                 fresh.append(index)
             elif known.kind != "example" or known.fp != fp or known.label != y:
                 raise ItemError(index, self._reused(item_id, "before"))
-        encoded, _ = self._encode([items[i][1] for i in fresh], fresh)
+        encoded, _ = self._encode([items[i][1] for i in fresh], fresh, vote=False)
         done: dict[str, dict[str, Any]] = {}
         for index, enc in zip(fresh, encoded, strict=True):
-            item_id, features, y = items[index]
+            item_id, _, y = items[index]
             wrong, updated = self._learn(t, item_id, enc, y, None)
-            fp = fingerprint(features)
-            self.resolved[item_id] = Resolved("example", t, fp, y, None, wrong, updated)
+            self.resolved[item_id] = Resolved("example", t, prints[index], y, None, wrong, updated)
             self.counts["examples"] += 1
             done[item_id] = self._outcome(item_id, "applied", wrong, updated)
         out = []
@@ -318,50 +356,67 @@ class Stream:
         self, t: float, item_id: str, enc: Encoded, y: int, p: Pending | None
     ) -> tuple[int, int]:
         wrong_bits = updated_bits = 0
-        served_wrong = p is not None and p.votes[self.serve_index] != y
-        for i, seat in enumerate(self.seats):
-            changed = False
-            if p is not None:
-                same_epoch = p.epochs[i] == seat.epoch
-                if same_epoch:
-                    seat.outstanding -= 1
-                vote_wrong = p.votes[i] != y
-                seat.observe_vote(vote_wrong, served_wrong, same_epoch)
-                changed = same_epoch and vote_wrong
-                wrong_bits |= vote_wrong << i
-            wrong, updated = seat.learn(item_id, enc, y)
-            if p is None:
+        policy = self.policy
+        if p is None:  # a labelled example: "wrong" is the hypothesis at label time
+            for i, seat in enumerate(self.seats):
+                wrong, updated = seat.learn(item_id, enc, y)
                 wrong_bits |= wrong << i
+                updated_bits |= updated << i
+                alert = seat.settle(t, updated, policy)
+                if alert is not None:
+                    self._alerted(alert)
+            return wrong_bits, updated_bits
+        votes, epochs = p.votes, p.epochs
+        served_wrong = votes[self.serve_index] != y
+        for i, seat in enumerate(self.seats):
+            same_epoch = epochs[i] == seat.epoch
+            if same_epoch:
+                seat.outstanding -= 1
+            vote_wrong = votes[i] != y
+            seat.observe_vote(vote_wrong, served_wrong, same_epoch)
+            wrong_bits |= vote_wrong << i
+            _, updated = seat.learn(item_id, enc, y)
             updated_bits |= updated << i
-            alert = seat.settle(t, changed or updated, self.policy)
+            alert = seat.settle(t, (same_epoch and vote_wrong) or updated, policy)
             if alert is not None:
-                self.new_alerts.append(alert)
-                self.epochs = tuple(s.epoch for s in self.seats)
+                self._alerted(alert)
         return wrong_bits, updated_bits
 
+    def _alerted(self, alert: dict[str, Any]) -> None:
+        self.new_alerts.append(alert)
+        self.epochs = tuple(s.epoch for s in self.seats)  # a restart begins a new epoch
+
     def _encode(
-        self, features: list[Features], indices: list[int]
+        self, features: list[Features], indices: list[int], *, vote: bool = True
     ) -> tuple[list[Encoded], list[tuple[int, ...]]]:
-        """Encode the items and let every learner vote on them, all or nothing.
+        """Encode the items and let every learner vote on them (or only check them, when
+        ``vote`` is false), all or nothing.
 
         A learner may refuse an item the space accepts (Winnow reads values in [0, 1] only);
         then, as when the space refuses one, the names this call admitted are taken back and
         nothing has changed. Voting does not change a learner.
         """
         space = self.space
+        panel = [seat.learner for seat in self.seats]
         mark = len(space.names)
         encoded: list[Encoded] = []
         votes: list[tuple[int, ...]] = []
+        read = 0  # items every learner has read
         try:
             for item in features:
                 encoded.append(space.encode(item))
             for enc in encoded:
-                votes.append(tuple(seat.learner.predict(enc) for seat in self.seats))
+                if vote:
+                    votes.append(tuple([learner.predict(enc) for learner in panel]))
+                else:
+                    for learner in panel:
+                        learner.check(enc)
+                read += 1
         except LearnerError as exc:
             for name in space.names[mark:]:
                 del space.index[name]
             del space.names[mark:]
-            where = len(votes) if len(encoded) == len(features) else len(encoded)
+            where = read if len(encoded) == len(features) else len(encoded)
             error = InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
             raise ItemError(indices[where], error) from exc
         return encoded, votes
@@ -369,23 +424,34 @@ class Stream:
     # -- answers ---------------------------------------------------------------------------
 
     def _answer(self, item_id: str, votes: tuple[int, ...], duplicate: bool) -> dict[str, Any]:
+        # Answers with the same votes share one (read-only) mapping of the votes.
+        views = self._vote_views
+        shown = views.get(votes)
+        if shown is None:
+            if len(views) >= VIEW_CACHE:
+                views.clear()
+            shown = views[votes] = {s.name: v for s, v in zip(self.seats, votes, strict=True)}
         return {
             "id": item_id,
             "label": votes[self.serve_index],
-            "served_by": self.seats[self.serve_index].name,
-            "votes": {s.name: v for s, v in zip(self.seats, votes, strict=True)},
+            "served_by": self.serve_name,
+            "votes": shown,
             "duplicate": duplicate,
         }
 
     def _outcome(self, item_id: str, status: str, wrong: int, updated: int) -> dict[str, Any]:
-        return {
-            "id": item_id,
-            "status": status,
-            "learners": {
+        # Outcomes with the same bits share one (read-only) mapping of the learners.
+        views = self._outcome_views
+        key = (wrong, updated)
+        shown = views.get(key)
+        if shown is None:
+            if len(views) >= VIEW_CACHE:
+                views.clear()
+            shown = views[key] = {
                 s.name: {"wrong": bool(wrong >> i & 1), "updated": bool(updated >> i & 1)}
                 for i, s in enumerate(self.seats)
-            },
-        }
+            }
+        return {"id": item_id, "status": status, "learners": shown}
 
     def _not_pending(self, item_id: str, y: int) -> dict[str, Any]:
         r = self.resolved.get(item_id)

@@ -1,0 +1,104 @@
+"""A stream's fast paths give what the plain definitions give.
+
+The item digest is stored in snapshots, so its fast form must equal its definition; answers and
+outcomes share read-only views of the votes, which must still say what the contract says.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import random
+from collections.abc import Mapping
+from typing import Any
+
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from service.streams import Stream, fingerprint
+
+NAMES = st.text(min_size=1, max_size=12)
+VALUES = st.one_of(
+    st.floats(allow_nan=False, allow_infinity=False),
+    st.integers(min_value=-(10**20), max_value=10**20),
+    st.sampled_from([0, 0.0, -0.0, 1, 1.0, True]),
+)
+
+
+def defined_digest(features: Any) -> str:
+    """The digest as defined (and as stored by earlier versions): blake2b, 12 bytes, of the
+    standard library's ``json.dumps`` of the sorted (name, value) pairs with non-zero values."""
+    if isinstance(features, Mapping):
+        pairs = sorted((str(k), float(v)) for k, v in features.items() if v != 0)
+    else:
+        pairs = sorted((str(k), 1.0) for k in features)
+    return hashlib.blake2b(json.dumps(pairs).encode(), digest_size=12).hexdigest()
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.one_of(st.lists(NAMES, unique=True), st.dictionaries(NAMES, VALUES)))
+def test_the_digest_is_the_defined_one(features: Any) -> None:
+    assert fingerprint(features) == defined_digest(features)
+
+
+def test_the_digest_is_the_defined_one_for_unusual_items() -> None:
+    items: list[Any] = [
+        [],
+        {},
+        {"a": float("nan")},
+        {"a": float("inf"), "b": float("-inf")},
+        {"nan]": 1.5},
+        ["é", "\u2028", 'q"', "\\"],
+        ("a", "b"),
+        [3, "a"],
+        {7: 2.0},
+    ]
+    for item in items:
+        assert fingerprint(item) == defined_digest(item), item
+    assert fingerprint(["b", "a"]) == fingerprint({"a": 1, "b": 1.0, "c": 0})
+
+
+def two_learner_stream(names: tuple[str, str]) -> Stream:
+    config = {
+        "stream": "s",
+        "features": 50,
+        "learners": [
+            {"name": names[0], "kind": "elimination", "params": {}},
+            {"name": names[1], "kind": "perceptron", "params": {}},
+        ],
+        "serve": names[1],
+        "label_wait_seconds": 1000.0,
+        "on_exceed": "keep",
+        "near": 0.8,
+        "webhook": None,
+    }
+    return Stream(config, 0.0, history_points=50, max_remembered=1000)
+
+
+def test_answers_and_outcomes_say_what_the_contract_says() -> None:
+    """Votes name each learner's vote; feedback ``wrong`` = its vote differed from the label
+    (the HTTP contract); two learners make vote keys and outcome keys of the same length."""
+    rng = random.Random(3)
+    stream = two_learner_stream(("e", "p"))
+    other = two_learner_stream(("x", "y"))
+    flags = [f"f{i}" for i in range(12)]
+    items = [(f"i{n}", rng.sample(flags, 4)) for n in range(120)]
+    answers = stream.apply_predict(1.0, items)
+    assert [a["id"] for a in answers] == [i for i, _ in items]
+    for answer in answers:
+        assert set(answer["votes"]) == {"e", "p"}
+        assert answer["label"] == answer["votes"]["p"] and answer["served_by"] == "p"
+    labels = [rng.randint(0, 1) for _ in items]
+    outcomes = stream.apply_feedback(2.0, [(i, y) for (i, _), y in zip(items, labels, strict=True)])
+    for answer, outcome, y in zip(answers, outcomes, labels, strict=True):
+        assert outcome["status"] == "applied"
+        for name in ("e", "p"):
+            assert outcome["learners"][name]["wrong"] == (answer["votes"][name] != y)
+    updated = sum(o["learners"]["p"]["updated"] for o in outcomes)
+    assert updated == stream.seats[1].learner.updates
+    # Another stream's views carry its own names.
+    assert set(other.apply_predict(1.0, items[:3])[0]["votes"]) == {"x", "y"}
+    # A repeated predict answers from the stored votes, marked as a duplicate.
+    again = stream.apply_predict(3.0, items[:5])
+    assert [a["votes"] for a in again] == [a["votes"] for a in answers[:5]]
+    assert all(a["duplicate"] for a in again)
