@@ -138,13 +138,13 @@ def test_averaged_with_bias_matches_scikit_learn_fed_each_prefix_in_one_call() -
         assert intercept == pytest.approx(reference.intercept_[0], rel=1e-12, abs=1e-12)
 
 
-# -- the voted perceptron against a direct transcription of its definition ------------------------
+# -- the voted perceptron against a direct dense rendering of its definition ------------------------
 
 
-def test_voted_matches_a_dense_transcription_of_the_definition() -> None:
+def test_voted_matches_a_dense_rendering_of_the_definition() -> None:
     # Source: Freund and Schapire 1999, Machine Learning 37(3), the voted perceptron: keep every
     # hypothesis v_i with the number of rows c_i it survived; predict sign(sum c_i sign(v_i . x)).
-    # The transcription keeps full dense copies; the learner keeps sparse deltas.
+    # The rendering keeps full dense copies; the learner keeps sparse deltas.
     names, X, y = breast_cancer()
     X = (X - X.mean(axis=0)) / X.std(axis=0)
     X, y = X[:200], y[:200]
