@@ -7,6 +7,8 @@ Pure algorithms: the standard library and numpy only. The interface the service 
     learner.learn(item, label)     # True when it updated
     learner.updates, learner.mistakes, learner.contradicted
     learner.ceiling()              # value, formula, assumption, source, counts, implied
+    learner.ceiling_value()        # ceiling().value alone, O(1): for a read after every label
+    learner.counts                 # "updates" or "mistakes": what the ceiling bounds
     state = learner.to_state()     # plain JSON-safe data, versioned
     learners.from_state(state)     # continues exactly where the original was
 """

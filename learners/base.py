@@ -9,11 +9,19 @@ most if the stream satisfies its assumption: its *ceiling*. The counts it keeps:
   ``mistakes`` for purely mistake-driven learners; larger for margin learners that also update on
   correct but unconfident answers; for halving, the mistakes, although it prunes on every label).
 
-The ceiling bounds one of ``updates`` or ``mistakes``, and says which in :attr:`Ceiling.counts`.
+The ceiling bounds one of ``updates`` or ``mistakes``, and says which in :attr:`Ceiling.counts`;
+that choice is fixed for a kind and is also the class attribute :attr:`Learner.counts`.
 
 A subclass implements ``_predict(enc)``, ``_learn(enc, y) -> (wrong, updated)``, ``ceiling()``,
 ``_learned_state()`` and ``_restore(learned)``; the base class owns validation, the counters and the
 state envelope, so adding a learner is one module and one line in the registry.
+
+Reading the ceiling on every label
+    ``ceiling()`` builds the whole record (formula, assumption, source, implied values) for the
+    ledger. A caller that only needs the number after each label (to tell within, near, exceeded)
+    reads :meth:`Learner.ceiling_value`, always equal to ``ceiling().value``, and
+    :attr:`Learner.counts`; every learner computes that value in O(1) (weighted majority over
+    explicit rules: O(rules) in numpy, once per label).
 """
 
 from __future__ import annotations
@@ -32,6 +40,7 @@ from learners.features import Encoded, FeatureSpace, Item
 STATE_VERSION = 1
 
 Standing = Literal["within", "near", "exceeded", "contradicted"]
+Counts = Literal["updates", "mistakes"]
 
 
 @dataclass(frozen=True)
@@ -47,7 +56,7 @@ class Ceiling:
     formula: str
     assumption: str
     source: str
-    counts: Literal["updates", "mistakes"] = "updates"
+    counts: Counts = "updates"
     implied: Mapping[str, float] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
@@ -61,19 +70,22 @@ class Ceiling:
         }
 
 
-def standing(count: int, ceiling: Ceiling, contradicted: bool, near: float = 0.8) -> Standing:
-    """Where a learner stands against its ceiling.
+def standing(
+    count: int, ceiling: Ceiling | float | None, contradicted: bool, near: float = 0.8
+) -> Standing:
+    """Where a learner stands against its ceiling (a :class:`Ceiling` or just its value).
 
     contradicted: the stream has proven the assumption false directly; exceeded: the counted
     quantity is above the ceiling; near: it has reached ``near`` times the ceiling; else within.
     """
     if contradicted:
         return "contradicted"
-    if ceiling.value is None:
+    value = ceiling.value if isinstance(ceiling, Ceiling) else ceiling
+    if value is None:
         return "within"
-    if count > ceiling.value:
+    if count > value:
         return "exceeded"
-    if count > 0 and count >= near * ceiling.value:
+    if count > 0 and count >= near * value:
         return "near"
     return "within"
 
@@ -151,6 +163,8 @@ class Learner(ABC):
     """An online binary classifier with a mistake ledger and a ceiling."""
 
     kind: ClassVar[str]
+    #: What the ceiling bounds, the same as ``ceiling().counts`` (fixed for a kind).
+    counts: ClassVar[Counts] = "updates"
     #: True when the prediction function changes only at updates; only then does the served
     #: ceiling (1 + G) U hold under delayed labels.
     changes_only_on_update: bool = True
@@ -179,6 +193,10 @@ class Learner(ABC):
     @abstractmethod
     def ceiling(self) -> Ceiling:
         """The ceiling now, with live inputs (R, m*, |hypothesis|) read from the stream so far."""
+
+    def ceiling_value(self) -> float | None:
+        """``ceiling().value``, without building the record; a subclass computes it in O(1)."""
+        return self.ceiling().value
 
     @abstractmethod
     def _learned_state(self) -> dict[str, Any]:
@@ -225,14 +243,12 @@ class Learner(ABC):
 
     @property
     def counted(self) -> int:
-        """The count the ceiling bounds (updates or mistakes, as the ceiling says)."""
-        return self.updates if self.ceiling().counts == "updates" else self.mistakes
+        """The count the ceiling bounds (updates or mistakes, as :attr:`counts` says)."""
+        return self.updates if self.counts == "updates" else self.mistakes
 
     def standing(self, near: float = 0.8) -> Standing:
         """within, near, exceeded or contradicted (see :func:`standing`)."""
-        ceiling = self.ceiling()
-        count = self.updates if ceiling.counts == "updates" else self.mistakes
-        return standing(count, ceiling, self.contradicted, near)
+        return standing(self.counted, self.ceiling_value(), self.contradicted, near)
 
     def to_state(self, include_space: bool = True) -> dict[str, Any]:
         """Plain JSON-safe data from which :func:`learners.from_state` continues exactly."""
@@ -296,6 +312,7 @@ def ensure_length(array: Any, length: int, fill: float) -> Any:
 
 __all__ = [
     "Ceiling",
+    "Counts",
     "Learner",
     "Standing",
     "check_choice",

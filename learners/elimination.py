@@ -104,6 +104,16 @@ class Elimination(Learner):
             return len(self.required) + self.space.size - len(self.allowed)
         return len(self.required)
 
+    def ceiling_value(self) -> float:
+        """``ceiling().value`` in O(1)."""
+        n = self.space.size
+        static = n + 1 if self.negations else n
+        required = self.required
+        if required is None:
+            return float(static)
+        size = len(required) + (n - len(self.allowed) if self.negations else 0)
+        return float(min(static, self.updates + size))
+
     def ceiling(self) -> Ceiling:
         n = self.space.size
         size = self.size()

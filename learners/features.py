@@ -33,13 +33,13 @@ SPACE_STATE_VERSION = 1
 class Encoded:
     """One item in a space's indices: ``keys`` (list of ints) and ``vals`` (None when all are 1).
 
-    The numpy views ``idx`` and ``val`` and the set ``on`` (indices whose value is non-zero; boolean
-    learners read a feature as true when it is in ``on``) are built on first use and kept, so a
-    panel of learners shares one encoding and pays only for what it reads. Indices are unique
-    within an item and keep the item's order.
+    The numpy views ``idx`` and ``val``, the set ``on`` (indices whose value is non-zero; boolean
+    learners read a feature as true when it is in ``on``) and the test ``unit`` (every value in
+    [0, 1]) are built on first use and kept, so a panel of learners shares one encoding and pays
+    only for what it reads. Indices are unique within an item and keep the item's order.
     """
 
-    __slots__ = ("keys", "vals", "binary", "_idx", "_val", "_on")
+    __slots__ = ("keys", "vals", "binary", "_idx", "_val", "_on", "_unit")
 
     def __init__(self, keys: list[int], vals: list[float] | None) -> None:
         self.keys = keys
@@ -48,6 +48,7 @@ class Encoded:
         self._idx: np.ndarray | None = None
         self._val: np.ndarray | None = None
         self._on: frozenset[int] | None = None
+        self._unit: bool | None = None
 
     @property
     def idx(self) -> np.ndarray:
@@ -66,6 +67,14 @@ class Encoded:
         if self._on is None:
             self._on = frozenset(self.keys)
         return self._on
+
+    @property
+    def unit(self) -> bool:
+        """True when every value lies in [0, 1] (always, for flags)."""
+        if self._unit is None:
+            vals = self.vals
+            self._unit = vals is None or (min(vals) >= 0.0 and max(vals) <= 1.0)
+        return self._unit
 
     def sq_norm(self) -> float:
         """The squared Euclidean norm of the item."""

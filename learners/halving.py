@@ -33,10 +33,12 @@ Delayed labels
 Cost
     Memory and time follow the class, never ``n``: rules are evaluated together with numpy over
     the ``m`` flags they mention. When ``m`` is small against the literals per rule (the ``3^n``
-    classes) each rule is two bit masks over those flags (``m <= 63`` is one 64-bit word per mask)
-    and a vote is a few vector operations over the survivors; otherwise each rule is a row of its
-    literals (slot, sign) and a vote reads those. Survivors are compacted after each label, so the
-    cost falls as the class is pruned. Building the class parses every literal once.
+    classes) each rule is two bit masks over those flags (``m <= 63`` is one 64-bit word per mask):
+    the flags that must be on and the flags it reads; a rule holds on an item ``x`` when
+    ``x & reads == must``, so a vote is two vector operations over the survivors. Otherwise each
+    rule is a row of its literals (slot, sign) and a vote reads those. Survivors are compacted
+    after each label, so the cost falls as the class is pruned. Building the class parses every
+    literal once.
 
 References
     D. Angluin, "Queries and concept learning", Machine Learning 2(4), 1988.
@@ -173,7 +175,13 @@ class Halving(Learner):
             neg = np.zeros((count, words), dtype=np.uint64)
             np.bitwise_or.at(pos, (rule_of[positive], word[positive]), bit[positive])
             np.bitwise_or.at(neg, (rule_of[~positive], word[~positive]), bit[~positive])
-            self._all_a, self._all_b = pos, neg
+            # A rule with a flag and its negation never holds: it also reads the phantom flag
+            # (always on) without requiring it, so its test can never pass.
+            never = (pos & neg).any(axis=1)
+            phantom = np.uint64(1) << np.uint64(m % 64)
+            neg[never, m // 64] |= phantom
+            pos[never, m // 64] &= ~phantom
+            self._all_a, self._all_b = pos, pos | neg  # must be on, read
         else:
             self._masks = False
             order = np.argsort(rule_of, kind="stable")
@@ -202,26 +210,27 @@ class Halving(Learner):
             bits = 1 << m  # the phantom flag, always on
             for slot in slots.tolist():
                 bits |= 1 << slot
-            a, b = self._a, self._b
-            words = a.shape[1]
+            must, read = self._a, self._b
+            words = must.shape[1]
             if words == 1:
-                x = np.uint64(bits)
-                return ((a[:, 0] & ~x) | (b[:, 0] & x)) == 0
+                return (read[:, 0] & np.uint64(bits)) == must[:, 0]
             xs = np.array([(bits >> (64 * w)) & _WORD for w in range(words)], dtype=np.uint64)
-            return ~((a & ~xs) | (b & xs)).any(axis=1)
+            return ((read & xs) == must).all(axis=1)
         flags = np.zeros(m + 1, dtype=bool)
         flags[m] = True
         flags[slots] = True
         return (flags[self._a] == self._b).all(axis=1)
 
     def _predict(self, enc: Encoded) -> int:
-        return int(2 * int(self._truth(enc).sum()) > len(self._alive))
+        return int(2 * int(np.count_nonzero(self._truth(enc))) > len(self._alive))
 
     def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
         truth = self._truth(enc)
-        wrong = int(2 * int(truth.sum()) > len(self._alive)) != y
-        agree = truth if y else ~truth
-        if not agree.all():
+        true = int(np.count_nonzero(truth))
+        alive = len(self._alive)
+        wrong = int(2 * true > alive) != y
+        if true != (alive if y else 0):  # some survivor disagrees with the label
+            agree = truth if y else ~truth
             self._alive = self._alive[agree]
             self._a, self._b = self._a[agree], self._b[agree]
         if len(self._alive) == 0:
@@ -229,6 +238,12 @@ class Halving(Learner):
         return wrong, wrong
 
     # -- the ceiling --------------------------------------------------------------------------
+
+    def ceiling_value(self) -> float:
+        """``ceiling().value`` in O(1)."""
+        static = len(self.rules).bit_length() - 1
+        alive = len(self._alive)
+        return float(static if alive == 0 else min(static, self.updates + alive.bit_length() - 1))
 
     def ceiling(self) -> Ceiling:
         static = len(self.rules).bit_length() - 1  # floor(log2 |C|), exact

@@ -81,6 +81,7 @@ class PassiveAggressive(Learner):
     """Passive-aggressive learning of a halfspace: PA, PA-I and PA-II."""
 
     kind = "passive-aggressive"
+    counts = "mistakes"
     # Its prediction changes at updates, but the ceiling counts mistakes, which are fewer.
     changes_only_on_update = False
 
@@ -178,6 +179,20 @@ class PassiveAggressive(Learner):
         names = self.space.names
         w = self._w[: len(names)]
         return {names[i]: float(w[i]) for i in np.flatnonzero(w)}, self._b * self._c
+
+    def ceiling_value(self) -> float | None:
+        """``ceiling().value`` in O(1)."""
+        gamma = self.margin
+        if gamma is None:
+            return None
+        r2 = self._r2
+        if self.variant == "pa1":
+            numerator = max(r2, 1.0 / self._C)
+        elif self.variant == "pa2":
+            numerator = r2 + 0.5 / self._C
+        else:
+            numerator = r2
+        return numerator / (gamma * gamma)
 
     def ceiling(self) -> Ceiling:
         r2 = self._r2

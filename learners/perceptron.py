@@ -281,6 +281,15 @@ class Perceptron(Learner):
         w = w[: len(names)]
         return {names[i]: float(w[i]) for i in np.flatnonzero(w)}, b * self._c
 
+    def ceiling_value(self) -> float | None:
+        """``ceiling().value`` in O(1)."""
+        gamma = self.margin
+        if gamma is None:
+            return None
+        if self.variant == "margin":
+            return (self._r2 + 2.0 * self._threshold / self._step) / (gamma * gamma)
+        return self._r2 / (gamma * gamma)
+
     def ceiling(self) -> Ceiling:
         r2 = self._r2
         gamma = self.margin

@@ -36,9 +36,10 @@ Mistake ceiling (counts updates, which are exactly the master's label-time mista
     ``contradicted``.
 
 Cost
-    Every rule's mistakes are derived, not stored: per flag, how many labels of each class came
-    with the flag on; a flag rule's mistakes are then ``(positives - positives with it on) +
-    negatives with it on`` (and the mirror for its negation), O(active flags) per label. Without
+    Every rule's mistakes are derived, not stored: per flag, how many positives came with the
+    flag on (``P_on``) and the balance ``D = N_on - P_on`` (negatives minus positives with it on);
+    with ``P`` and ``N`` the positives and negatives so far, a flag rule's mistakes are ``P + D``
+    and its negation's ``N - D``, kept in O(active flags) per label. Without
     ``rules``, a rule on a flag never seen on has voted exactly like a constant on every label, so
     it has the constant's weight and mistakes: such rules are counted in bulk, never stored, and
     the space may declare n = 10^8. The weights of all rules that vote with the flags that are off
@@ -48,9 +49,16 @@ Cost
     that falls below 1e-308 of the total flushes to 0; the best rule always has the largest
     weight (at least 1/N of the total), so the ceiling's proof is unaffected.
 
-    Reading ``m*`` (the ceiling) and :meth:`best_rules` cost O(rules stored) in numpy, so a panel
-    of up to about 10^5 rules (or flags seen) stays cheap; beyond that the cost of each ceiling
-    read grows with the number of experts.
+    ``m*`` is kept up to date as it learns. Without ``rules``, a flag never seen on has ``D = 0``
+    (as have the constants), so ``m* = min(P + min(0, min D), N - max(0, max D))``; a label moves
+    ``D`` by one step for its active flags only, and :class:`learners.rules.Spread` keeps
+    ``min(0, min D)``, ``max(0, max D)`` and how many flags sit at each, from the moved values
+    alone. Only when the last flag at an extreme moves inwards does it count the flags at the new
+    extreme: one numpy scan of ``D`` while at most ``SPREAD_SCAN`` (16,384) flags are stored,
+    beyond that a histogram of ``D`` kept lazily (amortised O(active flags) per label). Reading
+    the ceiling (:meth:`ceiling_value`) is then O(1). With explicit ``rules``, ``m*`` is the
+    vectorised minimum over the listed rules, O(rules) in numpy on the first read after a label.
+    :meth:`best_rules` costs O(rules, or flags seen) in numpy.
 
 References
     N. Littlestone and M. K. Warmuth, "The weighted majority algorithm", Information and
@@ -71,6 +79,7 @@ from learners.features import Encoded, FeatureSpace
 from learners.rules import (
     ScaledWeights,
     SlotMap,
+    Spread,
     check_names_known,
     literal_text,
     parse_literal,
@@ -121,12 +130,22 @@ class WeightedMajority(Learner):
             self._pos = ScaledWeights(m + 1, 0.0, has_pos)
             self._neg = ScaledWeights(m + 1, 0.0, has_neg)
             self._has_pos, self._has_neg = has_pos > 0, has_neg > 0
+            self._pos_slots = np.flatnonzero(self._has_pos)
+            self._neg_slots = np.flatnonzero(self._has_neg)
             self._map = SlotMap(self.space, names)
-        self._on1 = np.zeros(0 if self._map is None else len(self._pos.rel), dtype=np.int64)
-        self._on0 = self._on1.copy()
+        slots = 0 if self._map is None else len(self._pos.rel)
+        self._d = np.zeros(slots, dtype=np.int64)  # per slot: N_on - P_on (the balance D)
+        self._on1 = np.zeros(slots, dtype=np.int64)  # per slot: P_on
         self.labels1 = 0  # labels of each class so far
         self.labels0 = 0
-        self._best: tuple[int, int] = (-1, 0)  # (labels seen, m*) cache
+        # Every flag: min(0, min D) and max(0, max D), kept as it learns. Explicit rules: a cache
+        # of m* per number of labels seen.
+        self._spread = Spread(self._d, live=True) if self._map is None else None
+        self._best: tuple[int, int] = (-1, 0)
+        b = self.beta
+        self._log_rules = math.log2(self.n_rules)
+        self._log_inv_beta = math.log2(1.0 / b) if b > 0.0 else math.inf
+        self._log_shrink = math.log2(2.0 / (1.0 + b))
 
     def _parse(self, rules: Any) -> list[str]:
         if not isinstance(rules, list | tuple) or not rules:
@@ -191,16 +210,22 @@ class WeightedMajority(Learner):
         slots = self._slots(enc)
         ones, zeros = self._votes(slots)
         wrong = int(ones > zeros) != y
-        if self._map is None:
-            size = len(self.space)
-            self._on1 = ensure_length(self._on1, size, 0)
-            self._on0 = ensure_length(self._on0, size, 0)
+        if self._map is None and len(self._d) < len(self.space):
+            self._d = ensure_length(self._d, len(self.space), 0)
+            self._on1 = ensure_length(self._on1, len(self.space), 0)
+            if self._spread is not None:
+                self._spread.values = self._d
+        d = self._d
+        old = d[slots]
         if y:
             self.labels1 += 1
             self._on1[slots] += 1
+            d[slots] = old - 1
         else:
             self.labels0 += 1
-            self._on0[slots] += 1
+            d[slots] = old + 1
+        if self._spread is not None and len(old):
+            self._spread.move(old, -1 if y else 1)
         if wrong:
             b = self.beta
             if y:  # erred: flag rules whose flag is off, negated rules whose flag is on
@@ -222,30 +247,24 @@ class WeightedMajority(Learner):
     # -- every rule's mistakes ----------------------------------------------------------------
 
     def _balance(self) -> np.ndarray:
-        """Per slot: negatives with the flag on minus positives with it on (``d``). A flag rule's
-        mistakes are ``labels1 + d``, its negation's ``labels0 - d``."""
-        length = max(len(self._on0), len(self._on1))
-        on0 = ensure_length(self._on0, length, 0)
-        on1 = ensure_length(self._on1, length, 0)
-        return on0[:length] - on1[:length]
+        """Per slot: negatives with the flag on minus positives with it on (``d``), a view (slots
+        past the space's admitted names are 0). A flag rule's mistakes are ``labels1 + d``, its
+        negation's ``labels0 - d``."""
+        return self._d
 
     def best_mistakes(self) -> int:
         """m*: the fewest mistakes any one rule has made over all labels so far."""
+        spread = self._spread
+        if spread is not None:  # a never-seen flag (d = 0) is always among the rules
+            return min(self.labels1 + spread.lo, self.labels0 - spread.hi)
         key = self.labels0 + self.labels1
         if self._best[0] == key:
             return self._best[1]
-        d = self._balance()
-        if self._map is None:  # a never-seen flag (d = 0) is always among the rules
-            best = min(
-                self.labels1 + min(0, int(d.min(initial=0))),
-                self.labels0 - max(0, int(d.max(initial=0))),
-            )
-        else:
-            d = np.concatenate([d, np.zeros(len(self._has_pos) - len(d), dtype=np.int64)])
-            best = min(
-                self.labels1 + int(d[self._has_pos].min(initial=key)),
-                self.labels0 - int(d[self._has_neg].max(initial=-key)),
-            )
+        d = self._d
+        best = min(
+            self.labels1 + int(d[self._pos_slots].min(initial=key)),
+            self.labels0 - int(d[self._neg_slots].max(initial=-key)),
+        )
         self._best = (key, best)
         return best
 
@@ -259,9 +278,7 @@ class WeightedMajority(Learner):
                 rule="explicit rules given",
                 value=None,
             )
-        d = self._balance()
-        d = np.concatenate([d, np.zeros(len(self._has_pos) - len(d), dtype=np.int64)])
-        at = d[self._rule_slot]
+        at = self._d[self._rule_slot]
         mistakes = np.where(self._rule_positive, self.labels1 + at, self.labels0 - at)
         return dict(zip(self.rules, mistakes.tolist(), strict=True))
 
@@ -279,6 +296,12 @@ class WeightedMajority(Learner):
         out += [literal_text(names[j], True) for j in pos[:limit].tolist()]
         out += [literal_text(names[j], False) for j in neg[:limit].tolist()]
         return out[:limit]
+
+    def ceiling_value(self) -> float:
+        """``ceiling().value`` in O(1) (without ``rules``; O(rules) with them, once per label)."""
+        if self.beta == 0.0:
+            return self._log_rules
+        return (self._log_rules + self.best_mistakes() * self._log_inv_beta) / self._log_shrink
 
     def ceiling(self) -> Ceiling:
         n_rules, b = self.n_rules, self.beta
@@ -306,9 +329,8 @@ class WeightedMajority(Learner):
     # -- state --------------------------------------------------------------------------------
 
     def _learned_state(self) -> dict[str, Any]:
-        length = max(len(self._on0), len(self._on1))
-        on0 = ensure_length(self._on0, length, 0)[:length]
-        on1 = ensure_length(self._on1, length, 0)[:length]
+        on1 = self._on1
+        on0 = self._d + on1
         index = np.flatnonzero((on0 != 0) | (on1 != 0))
         return {
             "pos": self._pos.to_state(),
@@ -327,12 +349,17 @@ class WeightedMajority(Learner):
             self._neg.restore(learned["neg"], length, "learned.neg")
             index = np.asarray(learned["on_index"], dtype=np.int64)
             size = max(length, int(index.max(initial=-1)) + 1)
-            self._on1 = np.zeros(size, dtype=np.int64)
-            self._on0 = np.zeros(size, dtype=np.int64)
-            self._on1[index] = np.asarray(learned["on1"], dtype=np.int64)
-            self._on0[index] = np.asarray(learned["on0"], dtype=np.int64)
+            on1 = np.zeros(size, dtype=np.int64)
+            d = np.zeros(size, dtype=np.int64)
+            on1[index] = np.asarray(learned["on1"], dtype=np.int64)
+            d[index] = np.asarray(learned["on0"], dtype=np.int64)
+            d -= on1
             self.labels1 = int(learned["labels1"])
             self.labels0 = int(learned["labels0"])
+            self._d, self._on1 = d, on1
+            self._best = (-1, 0)
+            if self._map is None:
+                self._spread = Spread(d, live=True)
         except (KeyError, TypeError, ValueError, IndexError) as exc:
             raise StateError(
                 f"A weighted-majority state cannot be restored: {exc!r}.",

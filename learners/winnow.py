@@ -11,8 +11,9 @@ What it learns
 Inputs
     Values must lie in [0, 1]; any other value is refused with a FeatureError naming the feature
     (it is not clipped), before the shared space admits any of the item's names. The check is one
-    pass over a mapping's values (a list of flags needs none); an item passed already encoded is
-    checked only when it is not 0/1 (it says so). A flag is on when its value is non-zero.
+    pass over the item's values (a list of flags needs none), made once per encoded item and kept
+    on it, so predict, learn and the other learners of a panel do not repeat it. A flag is on
+    when its value is non-zero.
 
 Prediction
     ``sum_i w_i x_i > theta`` predicts 1 (``(w+ - w-) . x > theta`` for ``balanced``);
@@ -136,6 +137,11 @@ class Winnow(Learner):
         self._w = ScaledWeights(n, 2.0 if balanced else 1.0)
         self._against = ScaledWeights(n, 1.0) if balanced else None  # w-, balanced only
         self.fractional = False  # an update came from an item with a value strictly in (0, 1)
+        # The ceiling is per_k * k + fixed; both are fixed by the parameters and n.
+        self._per_k: float | None = None
+        self._fixed = 0.0
+        if not balanced:
+            self._per_k, self._fixed, _ = self._terms()
 
     def params(self) -> dict[str, Any]:
         return {
@@ -158,11 +164,9 @@ class Winnow(Learner):
 
     def check(self, enc: Encoded) -> None:
         """Refuse a value outside [0, 1] (the base class then forgets any name it admitted)."""
-        if enc.binary:
+        if enc.binary or enc.unit:  # unit: computed once per item, then kept on it
             return
         vals = enc.vals if enc.vals is not None else enc.val.tolist()
-        if min(vals) >= 0.0 and max(vals) <= 1.0:
-            return
         for key, value in zip(enc.keys, vals, strict=True):
             if not 0.0 <= value <= 1.0:
                 self._refuse(self.space.names[key], float(value))
@@ -205,10 +209,14 @@ class Winnow(Learner):
     def _factors(self, enc: Encoded, sign: int) -> tuple[float | np.ndarray, float]:
         """Factors (flags on the item, every other flag) for ``w_i *= alpha ** (sign z_i)``."""
         a = self.alpha
+        # sign * z written without the multiplication (the same numbers: -(1 - x) == x - 1).
         if self.complement:  # z = 1 - x on the item's features, 1 everywhere else
-            active: float | np.ndarray = 1.0 if enc.binary else a ** (sign * (1.0 - enc.val))
-            return active, a**sign
-        return (a**sign if enc.binary else a ** (sign * enc.val)), 1.0
+            if enc.binary:
+                return 1.0, a**sign
+            return a ** ((1.0 - enc.val) if sign > 0 else (enc.val - 1.0)), a**sign
+        if enc.binary:
+            return a**sign, 1.0
+        return a ** (enc.val if sign > 0 else -enc.val), 1.0
 
     def _zeroing(self, enc: Encoded) -> tuple[float | np.ndarray, float]:
         """winnow1's elimination: ``w_i = 0`` wherever ``z_i > 0``."""
@@ -229,6 +237,12 @@ class Winnow(Learner):
             return (a + 1.0) * rounds, a * n / ((a - 1.0) * theta), formula
         formula = "M <= alpha k max(0, log_alpha theta + 1) + n / theta"
         return a * rounds, n / theta, formula
+
+    def ceiling_value(self) -> float | None:
+        """``ceiling().value`` in O(1)."""
+        if self._per_k is None or self.fractional or self.relevant is None:
+            return None
+        return self._per_k * self.relevant + self._fixed
 
     def ceiling(self) -> Ceiling:
         shape = "conjunction" if self.complement else "disjunction"

@@ -156,15 +156,15 @@ class Seat:
     def settle(self, t: float, changed: bool, policy: str) -> dict[str, Any] | None:
         """After a label: record history, and raise an alert on reaching exceeded/contradicted.
 
-        The ceiling is read once per label (its live inputs may move on any label) and serves
-        both the history point and the state.
+        The ceiling's value is read once per label (its live inputs may move on any label) with
+        the learner's cheap ``ceiling_value()``, and serves both the history point and the state.
         """
         learner = self.learner
-        ceiling = learner.ceiling()
+        value = learner.ceiling_value()
         if changed:
-            self._point(t, ceiling)
-        count = learner.updates if ceiling.counts == "updates" else learner.mistakes
-        state = standing(count, ceiling, learner.contradicted, self.near)
+            self._point(t, value)
+        count = learner.updates if learner.counts == "updates" else learner.mistakes
+        state = standing(count, value, learner.contradicted, self.near)
         if state != "exceeded" and state != "contradicted":
             self.alerted = None
             return None
@@ -177,7 +177,7 @@ class Seat:
             "state": state,
             "at": t,
             "count": count,
-            "ceiling": finite_or_none(ceiling.value),
+            "ceiling": finite_or_none(value),
             "evidence": list(self.recent_wrong),
             "policy": policy,
         }
@@ -198,14 +198,14 @@ class Seat:
         self.epoch += 1
         self._fresh(t)
 
-    def _point(self, t: float, ceiling: Ceiling) -> None:
+    def _point(self, t: float, value: float | None) -> None:
         self.history.append(
             [
                 t,
                 self.learner.examples,
                 self.served_mistakes,
                 self.learner.updates,
-                finite_or_none(ceiling.value),
+                finite_or_none(value),
             ]
         )
         if len(self.history) > self.history_points:

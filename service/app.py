@@ -11,6 +11,8 @@ Routes (JSON under ``/v1``; errors in the one shape of ``service.errors``)::
     POST   /v1/streams/{stream}/examples    labelled items that were never predicted
     GET    /v1/streams/{stream}/ledger      every learner's counts against its ceiling
     GET    /v1/streams/{stream}/compare     each learner against the serving one (McNemar)
+    GET    /v1/streams/{stream}/export      the whole stream as one document (service.transfer)
+    POST   /v1/streams/import               create a stream from such a document
     GET    /metrics                         Prometheus text format
     GET    /healthz, /readyz                liveness; store open and replay finished
 
@@ -18,15 +20,18 @@ A write answers only after its event is committed (``service.store``). Each app 
 store (in ``settings.data_dir``), its own metrics registry and clock: nothing is shared between
 apps in one process. The store opens and replays in the lifespan's startup, and the shutdown
 snapshots every stream and closes it.
+
+The ordinary requests of predict, feedback and examples are answered by
+``service.writes.FastWrites`` before the routes, with the same work and the same answers; the
+routes below serve everything else (every refusal of a body, token or state) and make the
+OpenAPI document.
 """
 
 from __future__ import annotations
 
-import asyncio
 import json
 import time
 from collections.abc import AsyncIterator, Callable
-from concurrent.futures import Future
 from contextlib import asynccontextmanager
 from typing import Any
 
@@ -38,14 +43,15 @@ from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_l
 from starlette.concurrency import run_in_threadpool
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from service import errors, schemas
+from service import errors, schemas, transfer
 from service.alerts import AlertSender
 from service.errors import Unavailable, error_body
 from service.metrics import LedgerCollector
 from service.registry import Registry
 from service.security import Guard, Principal
 from service.settings import Settings
-from service.store import Store, StoreFailed
+from service.store import Store
+from service.writes import FastWrites, Writes, committed
 
 VERSION = "0.1.0"
 _ERRORS: dict[int | str, dict[str, Any]] = {
@@ -78,19 +84,22 @@ class StrictJSONRoute(APIRoute):
 
 
 class BodyLimit:
-    """Reads a request body up to ``limit`` bytes; beyond it, answers 413 at once."""
+    """Reads a request body up to ``limit`` bytes (``paths`` may set another limit for a path);
+    beyond it, answers 413 at once."""
 
-    def __init__(self, app: ASGIApp, limit: int) -> None:
+    def __init__(self, app: ASGIApp, limit: int, paths: dict[str, int] | None = None) -> None:
         self.app = app
         self.limit = limit
+        self.paths = paths or {}
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http" or scope["method"] not in ("POST", "PUT", "PATCH"):
             await self.app(scope, receive, send)
             return
+        limit = self.paths.get(scope["path"], self.limit)
         for key, value in scope.get("headers", []):
-            if key == b"content-length" and value.isdigit() and int(value) > self.limit:
-                await self._reject(scope, receive, send, int(value))
+            if key == b"content-length" and value.isdigit() and int(value) > limit:
+                await self._reject(scope, receive, send, int(value), limit)
                 return
         chunks: list[bytes] = []
         total = 0
@@ -100,8 +109,8 @@ class BodyLimit:
                 return
             chunk = message.get("body", b"")
             total += len(chunk)
-            if total > self.limit:
-                await self._reject(scope, receive, send, total)
+            if total > limit:
+                await self._reject(scope, receive, send, total, limit)
                 return
             chunks.append(chunk)
             if not message.get("more_body", False):
@@ -118,24 +127,18 @@ class BodyLimit:
 
         await self.app(scope, replay, send)
 
-    async def _reject(self, scope: Scope, receive: Receive, send: Send, size: int) -> None:
+    async def _reject(
+        self, scope: Scope, receive: Receive, send: Send, size: int, limit: int
+    ) -> None:
         body = error_body(
             413,
             "too_large",
-            f"A request body may have at most {self.limit} bytes; this one has at least {size}.",
+            f"A request body may have at most {limit} bytes; this one has at least {size}.",
             "body",
-            f"at most {self.limit} bytes",
+            f"at most {limit} bytes",
             size,
         )
         await JSONResponse(body, status_code=413)(scope, receive, send)
-
-
-async def committed(future: Future[int]) -> None:
-    """Wait until an event is committed; a failed store becomes 503."""
-    try:
-        await asyncio.wrap_future(future)
-    except StoreFailed as exc:
-        raise Unavailable(str(exc), field="store", rule="a working store") from exc
 
 
 def create_app(
@@ -183,7 +186,15 @@ def create_app(
     app.state.metrics_registry = metrics_registry
     app.state.sender = sender
     errors.install(app)
-    app.add_middleware(BodyLimit, limit=settings.max_body_bytes)
+    writes = Writes(streams, guard)
+    # Ordinary predict/feedback/examples requests are answered here; all else goes on to the
+    # routes (service/writes.py). Added first, so it runs inside the body limit.
+    app.add_middleware(FastWrites, writes=writes, guard=guard, ready=lambda: streams.ready)
+    app.add_middleware(
+        BodyLimit,
+        limit=settings.max_body_bytes,
+        paths={transfer.IMPORT_PATH: settings.max_import_bytes},  # a whole stream's state
+    )
 
     BEARER = Depends(bearer)  # noqa: N806
 
@@ -206,8 +217,13 @@ def create_app(
     )
 
     @api.post("/streams", status_code=201, response_model=schemas.StreamDescription)
-    async def create_stream(body: schemas.StreamCreate, principal: Principal = WHO) -> JSONResponse:
+    async def create_stream(
+        body: schemas.StreamCreate,
+        principal: Principal = WHO,
+        shard_stream: transfer.StreamHeader = None,
+    ) -> JSONResponse:
         guard.admin(principal, "create streams")
+        transfer.check_stream_header(shard_stream, body.stream)  # the proxy routes by it
         description, future = streams.create(body)
         await committed(future)
         return JSONResponse(description, status_code=201)
@@ -242,15 +258,11 @@ def create_app(
     async def predict(
         stream: str, body: schemas.PredictRequest, principal: Principal = WHO
     ) -> JSONResponse:
-        guard.stream(principal, stream)
         if body.items is None:
-            assert body.features is not None
-            results, future = streams.predict(stream, [(body.id, body.features)], batch=False)
+            items: list[Any] = [(body.id, body.features)]
         else:
             items = [(item.id, item.features) for item in body.items]
-            results, future = streams.predict(stream, items, batch=True)
-        await committed(future)
-        return JSONResponse(results[0] if body.items is None else {"items": results})
+        return JSONResponse(await writes.predict(principal, stream, body.items is not None, items))
 
     @api.post(
         "/streams/{stream}/feedback",
@@ -259,15 +271,11 @@ def create_app(
     async def feedback(
         stream: str, body: schemas.FeedbackRequest, principal: Principal = WHO
     ) -> JSONResponse:
-        guard.stream(principal, stream)
         if body.items is None:
-            assert body.id is not None and body.label is not None
-            results, future = streams.feedback(stream, [(body.id, body.label)], batch=False)
+            items: list[Any] = [(body.id, body.label)]
         else:
             items = [(item.id, item.label) for item in body.items]
-            results, future = streams.feedback(stream, items, batch=True)
-        await committed(future)
-        return JSONResponse(results[0] if body.items is None else {"items": results})
+        return JSONResponse(await writes.feedback(principal, stream, body.items is not None, items))
 
     @api.post(
         "/streams/{stream}/examples",
@@ -276,16 +284,11 @@ def create_app(
     async def examples(
         stream: str, body: schemas.ExampleRequest, principal: Principal = WHO
     ) -> JSONResponse:
-        guard.stream(principal, stream)
         if body.items is None:
-            assert body.features is not None and body.label is not None
-            single = [(body.id, body.features, body.label)]
-            results, future = streams.examples(stream, single, batch=False)
+            items: list[Any] = [(body.id, body.features, body.label)]
         else:
             items = [(item.id, item.features, item.label) for item in body.items]
-            results, future = streams.examples(stream, items, batch=True)
-        await committed(future)
-        return JSONResponse(results[0] if body.items is None else {"items": results})
+        return JSONResponse(await writes.examples(principal, stream, body.items is not None, items))
 
     @api.get("/streams/{stream}/ledger", response_model=schemas.Ledger)
     async def ledger(stream: str, principal: Principal = WHO) -> JSONResponse:
@@ -298,6 +301,8 @@ def create_app(
         return JSONResponse(streams.compare(stream))
 
     app.include_router(api)
+    # Moving a stream between shards: export, import (service/transfer.py).
+    app.include_router(transfer.router(streams, guard, who, dependencies=[Depends(ready)]))
 
     @app.get(
         "/metrics",

@@ -68,5 +68,80 @@ main.add_command(ledger_command)
 main.add_command(demo_command)
 
 
+# -- moving a stream between shards: export it from one, import it into another -----------------
+
+
+def _transfer_options(command: Any) -> Any:
+    command = click.option(
+        "--timeout", default=120.0, show_default=True, help="Seconds to wait for the answer."
+    )(command)
+    command = click.option(
+        "--token",
+        default=None,
+        envvar="MISTAKE_LEDGER_TOKEN",
+        help="The admin token of that service; env MISTAKE_LEDGER_TOKEN.",
+    )(command)
+    return click.option(
+        "--url",
+        default="http://127.0.0.1:8000",
+        show_default=True,
+        envvar="MISTAKE_LEDGER_URL",
+        help="Address of the service (a shard's own address, or the proxy).",
+    )(command)
+
+
+@main.command("export")
+@click.argument("stream")
+@_transfer_options
+def export_command(stream: str, url: str, token: str | None, timeout: float) -> None:
+    """Write STREAM's whole state (learners, ledger, waiting predictions) as JSON to stdout.
+
+    A summary goes to stderr: two exports with the same seq hold the same writes.
+    """
+    import json
+
+    from service.client import ClientError, LedgerClient
+
+    try:
+        with LedgerClient(url, token, timeout=timeout, retries=2) as client:
+            document = client.export_stream(stream)
+    except ClientError as error:
+        raise click.ClickException(str(error)) from None
+    click.echo(json.dumps(document, separators=(",", ":"), allow_nan=False))
+    click.echo(_transfer_summary("exported", document), err=True)
+
+
+@main.command("import")
+@click.argument("file", type=click.File("r", encoding="utf-8"))
+@_transfer_options
+def import_command(file: Any, url: str, token: str | None, timeout: float) -> None:
+    """Create a stream on the service at --url from FILE, written by export ("-": stdin)."""
+    import json
+
+    from service.client import ClientError, LedgerClient
+
+    try:
+        document = json.load(file)
+    except (ValueError, UnicodeDecodeError) as error:
+        raise click.ClickException(f"{file.name} is not a JSON document: {error}") from None
+    if not isinstance(document, dict):
+        raise click.ClickException(f"{file.name} holds no exported stream (not a JSON object).")
+    try:
+        with LedgerClient(url, token, timeout=timeout, retries=2) as client:
+            client.import_stream(document)
+    except ClientError as error:
+        raise click.ClickException(str(error)) from None
+    click.echo(_transfer_summary(f"imported into {url}:", document))
+
+
+def _transfer_summary(what: str, document: dict[str, Any]) -> str:
+    state = document.get("state") or {}
+    return (
+        f"{what} stream {document.get('stream')!r}: seq {document.get('seq')}, "
+        f"{len(state.get('pending') or [])} waiting predictions, "
+        f"{len(state.get('resolved') or [])} remembered ids."
+    )
+
+
 if __name__ == "__main__":
     main()

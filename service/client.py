@@ -186,8 +186,14 @@ class LedgerClient:
     # -- streams --------------------------------------------------------------------------------
 
     def create_stream(self, spec: Mapping[str, Any]) -> dict[str, Any]:
-        """Create a stream from its description (name, features, learners, policy); 201 answer."""
-        return self._request("POST", "/v1/streams", json=dict(spec), idempotent=False)
+        """Create a stream from its description (name, features, learners, policy); 201 answer.
+
+        Sends the ``Mistake-Ledger-Stream`` header, so a sharding proxy routes it by stream id.
+        """
+        headers = {"Mistake-Ledger-Stream": str(spec.get("stream", ""))}
+        return self._request(
+            "POST", "/v1/streams", json=dict(spec), idempotent=False, headers=headers
+        )
 
     def streams(self) -> list[dict[str, Any]]:
         """Every stream's description."""
@@ -200,6 +206,21 @@ class LedgerClient:
     def delete_stream(self, stream: str) -> dict[str, Any]:
         """Delete a stream and its ledger."""
         return self._request("DELETE", _path(stream))
+
+    def export_stream(self, stream: str) -> dict[str, Any]:
+        """The stream's whole state as one document (admin token), to import on another shard."""
+        return self._request("GET", _path(stream, "export"))
+
+    def import_stream(self, document: Mapping[str, Any]) -> dict[str, Any]:
+        """Create a stream from an exported document (admin token); the stream's description.
+
+        Sends the ``Mistake-Ledger-Stream`` header, so a sharding proxy routes it to the
+        stream's shard. Like a create, it is sent again only when the service cannot have acted.
+        """
+        headers = {"Mistake-Ledger-Stream": str(document.get("stream", ""))}
+        return self._request(
+            "POST", "/v1/streams/import", json=dict(document), idempotent=False, headers=headers
+        )
 
     def has_stream(self, stream: str) -> bool:
         """Whether the stream exists."""
@@ -284,13 +305,19 @@ class LedgerClient:
     # -- the one place that talks to the network ----------------------------------------------
 
     def _request(
-        self, method: str, path: str, *, json: Any = None, idempotent: bool = True
+        self,
+        method: str,
+        path: str,
+        *,
+        json: Any = None,
+        idempotent: bool = True,
+        headers: Mapping[str, str] | None = None,
     ) -> dict[str, Any]:
         """Send one request with the retry rules in the module docstring; return its JSON."""
         attempt = 0
         while True:
             try:
-                response = self._http.request(method, path, json=json)
+                response = self._http.request(method, path, json=json, headers=headers)
             except (httpx.ConnectError, httpx.ConnectTimeout) as error:
                 # The request never reached the service: safe to send again whatever it is.
                 if attempt >= self.retries:

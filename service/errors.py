@@ -151,6 +151,11 @@ def error_response(exc: ServiceError) -> JSONResponse:
     )
 
 
+def from_learner(exc: LearnerError) -> InvalidInput:
+    """A learner's refusal of a value (it names field, rule and value) as an InvalidInput."""
+    return InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
+
+
 def field_path(loc: tuple[Any, ...] | list[Any]) -> str:
     """('body', 'items', 3, 'features', 'x') -> 'items[3].features.x'."""
     out = ""
@@ -262,9 +267,7 @@ def install(app: FastAPI) -> None:
 
     @app.exception_handler(LearnerError)
     async def _learner(request: Request, exc: LearnerError) -> JSONResponse:
-        return error_response(
-            InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
-        )
+        return error_response(from_learner(exc))
 
     @app.exception_handler(StarletteHTTPException)
     async def _http(request: Request, exc: StarletteHTTPException) -> JSONResponse:

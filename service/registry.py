@@ -71,10 +71,10 @@ class Registry:
         replayed = 0
         for seq, name, event in self.store.events():
             known = self.streams.get(name)
-            if event["type"] == "create":
+            if event["type"] in ("create", "import"):
                 if known is not None and known.last_seq >= seq:
                     continue
-                stream = self._new_stream(event["config"], float(event["t"]))
+                stream = self._restored(event)
                 self.streams[name] = stream
             elif known is None or known.last_seq >= seq:
                 continue
@@ -145,6 +145,12 @@ class Registry:
             history_points=self.settings.history_points,
             max_remembered=self.settings.max_remembered_ids,
         )
+
+    def _restored(self, event: dict[str, Any]) -> Stream:
+        """The stream a logged ``create`` or ``import`` event begins (see ``service.transfer``)."""
+        if event["type"] == "import":
+            return self._stream_from_state(event["state"])
+        return self._new_stream(event["config"], float(event["t"]))
 
     def _stream_from_state(self, state: dict[str, Any]) -> Stream:
         return Stream.from_state(
@@ -265,6 +271,53 @@ class Registry:
             "near": float(body.near),
             "webhook": body.webhook,
         }
+
+    # -- moving a stream between shards (service.transfer) ---------------------------------
+
+    def export(self, name: str) -> tuple[str, int, float, Future[int]]:
+        """The stream's state as of now (JSON text, the snapshot format), its last log position,
+        the time, and a future that resolves once every write the state holds is committed."""
+        stream = self.get(name)
+        with stream.lock:
+            self._usable(stream)
+            t = stream.advance(self.clock())
+            # Written out under the lock: to_state shares some lists with the live stream.
+            text = json.dumps(stream.to_state(), separators=(",", ":"), allow_nan=False)
+            return text, stream.last_seq, t, self.store.barrier()
+
+    def adopt(self, stream: Stream) -> tuple[dict[str, Any], Future[int]]:
+        """Add a stream restored from an exported state (checked by the caller): log it as one
+        ``import`` event carrying the state, then snapshot it, so the log stays short."""
+        with self.lock:
+            if stream.name in self.streams:
+                raise Conflict(
+                    f"Stream {stream.name!r} exists already on this service; delete it first "
+                    "to replace it.",
+                    field="stream",
+                    rule="a new stream id",
+                    value=stream.name,
+                )
+            if len(self.streams) >= self.settings.max_streams:
+                raise Conflict(
+                    f"This service holds its limit of {self.settings.max_streams} streams; "
+                    "delete one or raise MISTAKE_LEDGER_MAX_STREAMS.",
+                    field="stream",
+                    rule=f"at most {self.settings.max_streams} streams",
+                    value=len(self.streams) + 1,
+                )
+            self._writable()
+            with stream.lock:
+                event = {
+                    "type": "import",
+                    "stream": stream.name,
+                    "t": self.clock(),
+                    "state": stream.to_state(),
+                }
+                future = self._log(stream, event)
+                self.streams[stream.name] = stream
+                if stream.unsnapshotted:
+                    self._snapshot(stream)
+                return stream.describe(), future
 
     def delete(self, name: str) -> Future[int]:
         with self.lock:

@@ -110,6 +110,18 @@ class Guard:
             )
 
 
+def bearer_token(authorization: str | None) -> str | None:
+    """The token of an ``Authorization: Bearer <token>`` header value, else None (read as
+    FastAPI's HTTPBearer reads it: the scheme in any case, the token stripped)."""
+    if not authorization:
+        return None
+    scheme, _, token = authorization.partition(" ")
+    token = token.strip()
+    if not scheme or not token or scheme.lower() != "bearer":
+        return None
+    return token
+
+
 def _secret(value: object) -> bytes | None:
     if value is None:
         return None

@@ -71,6 +71,9 @@ class Settings(BaseSettings):
 
     # limits
     max_body_bytes: int = Field(1_048_576, ge=64)
+    max_import_bytes: int = Field(
+        256 * 1_048_576, ge=64, description="largest stream document POST /v1/streams/import takes"
+    )
     max_batch_items: int = Field(1000, ge=1)
     max_features_per_item: int = Field(10_000, ge=1)
     max_streams: int = Field(1000, ge=1)

@@ -12,6 +12,10 @@ Group commit: callers :meth:`Store.append` an event and get a future. One writer
 every job queued so far (up to a limit), writes them in one transaction, commits, and only then
 resolves their futures; a request answers after its future resolves. Callers append while holding
 the stream's lock, so sequence numbers (assigned here) follow the order events were applied.
+A caller that knows more writes are about to come (the app: requests its event loop is about to
+run) may :meth:`Store.hold` the next commit until it calls :meth:`Store.release`, so they share
+one commit (one fsync) instead of each waiting for the previous one; a hold lasts at most
+``HOLD_SECONDS``, and nothing waits when nobody holds.
 
 A snapshot replaces the stream's previous one and deletes the stream's events up to its position
 in the same transaction, so the log stays short. Everything is JSON; nothing is pickled.
@@ -26,6 +30,7 @@ import json
 import logging
 import sqlite3
 import threading
+import time
 from collections import deque
 from collections.abc import Iterator
 from concurrent.futures import Future
@@ -36,6 +41,7 @@ log = logging.getLogger("mistake_ledger.store")
 
 SCHEMA_VERSION = "1"
 FILE_NAME = "ledger.sqlite3"
+HOLD_SECONDS = 0.005  # the longest a hold delays a commit
 
 
 class StoreFailed(RuntimeError):
@@ -53,8 +59,9 @@ class _Job:
         self.future: Future[int] = Future()
 
 
-def _dumps(body: Any) -> str:
-    return json.dumps(body, separators=(",", ":"), allow_nan=False)
+# json.dumps(body, separators=(",", ":"), allow_nan=False), without an encoder per call
+_dumps = json.JSONEncoder(separators=(",", ":"), allow_nan=False).encode
+_INSERT = "INSERT INTO events (seq, stream, body) VALUES (?, ?, ?)"
 
 
 class Store:
@@ -72,6 +79,7 @@ class Store:
         self._cond = threading.Condition()
         self._next_seq = 1
         self._closing = False
+        self._held = 0  # holders that will release
         self._writer: threading.Thread | None = None
 
     # -- opening and reading ---------------------------------------------------------------
@@ -143,6 +151,17 @@ class Store:
         """A future that resolves once everything queued before it is committed."""
         return self._enqueue("barrier", "", None).future
 
+    def hold(self) -> None:
+        """Keep the next commit waiting (at most HOLD_SECONDS) until :meth:`release`."""
+        with self._cond:
+            self._held += 1
+
+    def release(self) -> None:
+        with self._cond:
+            self._held -= 1
+            if not self._held:
+                self._cond.notify()
+
     def _enqueue(self, kind: str, stream: str, body: Any) -> _Job:
         with self._cond:
             if self.failed is not None:
@@ -152,7 +171,8 @@ class Store:
             job = _Job(kind, stream, self._next_seq, body)
             self._next_seq += 1
             self._queue.append(job)
-            self._cond.notify()
+            if not self._held or len(self._queue) in (1, self.max_batch):
+                self._cond.notify()  # held: only to start the writer's bounded wait
         return job
 
     def _write_loop(self) -> None:
@@ -160,6 +180,13 @@ class Store:
             with self._cond:
                 while not self._queue and not self._closing:
                     self._cond.wait()
+                if self._held:
+                    deadline = time.monotonic() + HOLD_SECONDS
+                    while self._held and len(self._queue) < self.max_batch and not self._closing:
+                        left = deadline - time.monotonic()
+                        if left <= 0:
+                            break
+                        self._cond.wait(left)
                 if not self._queue:
                     return
                 batch = [
@@ -187,13 +214,15 @@ class Store:
         assert conn is not None
         conn.execute("BEGIN IMMEDIATE")
         try:
+            rows: list[tuple[int, str, str]] = []  # events not inserted yet, in order
             for job in batch:
                 if job.kind == "event":
-                    conn.execute(
-                        "INSERT INTO events (seq, stream, body) VALUES (?, ?, ?)",
-                        (job.seq, job.stream, _dumps(job.body)),
-                    )
-                elif job.kind == "snapshot":
+                    rows.append((job.seq, job.stream, _dumps(job.body)))
+                    continue
+                if rows:
+                    conn.executemany(_INSERT, rows)
+                    rows.clear()
+                if job.kind == "snapshot":
                     seq, state = job.body
                     conn.execute(
                         "INSERT OR REPLACE INTO snapshots (stream, seq, body) VALUES (?, ?, ?)",
@@ -205,6 +234,8 @@ class Store:
                 elif job.kind == "drop":
                     conn.execute("DELETE FROM events WHERE stream = ?", (job.stream,))
                     conn.execute("DELETE FROM snapshots WHERE stream = ?", (job.stream,))
+            if rows:
+                conn.executemany(_INSERT, rows)
             conn.execute("COMMIT")
         except BaseException:
             if conn.in_transaction:

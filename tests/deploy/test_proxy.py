@@ -5,7 +5,8 @@ end-to-end test runs nginx on loopback in front of small stand-in shards (plain 
 say who they are) to check the routing itself, including the consistent-hashing property: when a
 shard is added, a stream either stays where it was or moves to the new shard, never between the
 old ones (the ring construction of consistent hashing; nginx docs, ngx_http_upstream_hash_module,
-"consistent" = ketama).
+"consistent" = ketama). The last test puts real services behind it and moves the streams that
+hash to an added shard by export and import, as deploy/README.md tells an operator to.
 """
 
 from __future__ import annotations
@@ -21,7 +22,9 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 
 import pytest
+import uvicorn
 
+from service.client import LedgerClient
 from tests.deploy.tools import DEPLOY
 
 CONF = DEPLOY / "proxy" / "mistake-ledger.conf"
@@ -113,8 +116,14 @@ def free_port() -> int:
 class Proxy:
     """The shipped config with its example addresses replaced by the stand-ins' ports."""
 
-    def __init__(self, nginx: str, tmp: Path, shards: list[Shard]) -> None:
+    def __init__(
+        self, nginx: str, tmp: Path, shards: list[Shard], hold: tuple[str, ...] = ()
+    ) -> None:
         text = CONF.read_text()
+        if hold:  # streams on hold, in the map the config ships for it (commented out)
+            example = "    # lockers-north  1;"
+            assert text.count(example) == 1
+            text = text.replace(example, "\n".join(f"    {stream}  1;" for stream in hold))
         lines = [line for line in text.splitlines() if line.strip().startswith("server 127.")]
         assert [line.split()[1] for line in lines] == ["127.0.0.1:8000", "127.0.0.1:8001"]
         template = lines[1]
@@ -145,18 +154,26 @@ class Proxy:
     def request(
         self, method: str, path: str, headers: dict[str, str] | None = None, body: bytes = b""
     ) -> tuple[int, dict[str, object]]:
+        status, _, data = self.exchange(method, path, headers, body)
+        return status, data
+
+    def exchange(
+        self, method: str, path: str, headers: dict[str, str] | None = None, body: bytes = b""
+    ) -> tuple[int, dict[str, str], dict[str, object]]:
+        """One request: status, response headers (lower-case names) and the JSON body."""
         conn = http.client.HTTPConnection("127.0.0.1", self.port, timeout=10)
         try:
             conn.request(method, path, body=body or None, headers=headers or {})
             response = conn.getresponse()
             payload = response.read()
+            answer_headers = {k.lower(): v for k, v in response.getheaders()}
         finally:
             conn.close()
         try:
             data = json.loads(payload) if payload else {}
         except json.JSONDecodeError:
             data = {"raw": payload.decode(errors="replace")}
-        return response.status, data
+        return response.status, answer_headers, data
 
     def shard_of(self, stream: str) -> object:
         status, data = self.request("GET", f"/v1/streams/{stream}/ledger")
@@ -288,3 +305,182 @@ def test_adding_a_shard_moves_streams_only_to_it(
     assert all(after[s] == "c" for s in moved), {s: (before[s], after[s]) for s in moved}
     # (How many move depends on the new shard's share of the ring, which varies with its address;
     # plain modulo hashing would also move streams between a and b, which this rules out.)
+
+
+@pytest.mark.slow
+def test_an_import_goes_where_its_stream_lives(
+    nginx: str, tmp_path: Path, shards: list[Shard]
+) -> None:
+    a, b, _ = shards
+    proxy = Proxy(nginx, tmp_path / "two", [a, b])
+    try:
+        home = {stream: proxy.shard_of(stream) for stream in [*STREAMS, "import"]}
+        for stream in STREAMS[:10]:
+            # POST /v1/streams/import names its stream in the document: routed by the header.
+            body = json.dumps({"stream": stream, "state": {}}).encode()
+            status, data = proxy.request(
+                "POST", "/v1/streams/import", {"Mistake-Ledger-Stream": stream}, body
+            )
+            assert (status, data) == (200, {"shard": home[stream]}), stream
+            served = a if home[stream] == "a" else b
+            assert served.seen[-1][:2] == ("POST", "/v1/streams/import")
+            # The export of that stream goes by the path, to the same shard.
+            status, data = proxy.request("GET", f"/v1/streams/{stream}/export")
+            assert (status, data) == (200, {"shard": home[stream]})
+        seen = len(a.seen) + len(b.seen)
+        status, data = proxy.request("POST", "/v1/streams/import", {}, b"{}")
+        error = data["error"]
+        assert status == 400 and isinstance(error, dict)
+        assert error["field"] == "Mistake-Ledger-Stream"
+        assert len(a.seen) + len(b.seen) == seen
+        # Other methods on that path name a stream called "import", routed by the path.
+        for method in ("GET", "DELETE"):
+            status, data = proxy.request(method, "/v1/streams/import")
+            assert (status, data) == (200, {"shard": home["import"]}), method
+    finally:
+        proxy.stop()
+
+
+@pytest.mark.slow
+def test_a_stream_on_hold_gets_503_and_reaches_no_shard(
+    nginx: str, tmp_path: Path, shards: list[Shard]
+) -> None:
+    a, b, _ = shards
+    held = STREAMS[3]
+    proxy = Proxy(nginx, tmp_path / "hold", [a, b], hold=(held,))
+    try:
+        requests = [
+            ("POST", f"/v1/streams/{held}/predict", {}),
+            ("POST", f"/v1/streams/{held}/feedback", {}),
+            ("GET", f"/v1/streams/{held}/export", {}),
+            ("GET", f"/v1/streams/{held}", {}),
+            ("POST", "/v1/streams", {"Mistake-Ledger-Stream": held}),
+            ("POST", "/v1/streams/import", {"Mistake-Ledger-Stream": held}),
+        ]
+        for method, path, headers in requests:
+            status, answer_headers, data = proxy.exchange(method, path, headers, b"{}")
+            assert status == 503, (method, path, status, data)
+            # Retry-After: RFC 9110 section 10.2.3 (delay in seconds); the shape is the service's.
+            assert answer_headers.get("retry-after") == "5", answer_headers
+            error = data["error"]
+            assert isinstance(error, dict)
+            assert (error["status"], error["field"], error["value"]) == (503, "stream", held)
+        assert a.seen == [] and b.seen == []
+        # Every other stream is served as before.
+        for stream in STREAMS[:3] + STREAMS[4:8]:
+            status, data = proxy.request("POST", f"/v1/streams/{stream}/feedback", {}, b"{}")
+            assert status == 200 and data["shard"] in ("a", "b"), (stream, status, data)
+    finally:
+        proxy.stop()
+
+
+# ---------------------------------------------------------------- moving streams, for real
+
+
+class Served:
+    """A real service (its own store) served by uvicorn on a loopback port, in a thread."""
+
+    def __init__(self, data_dir: Path) -> None:
+        from prometheus_client import CollectorRegistry
+
+        from service.app import create_app
+        from service.settings import Settings
+
+        app = create_app(Settings.from_env({}, data_dir=data_dir), registry=CollectorRegistry())
+        self.port = free_port()
+        self.url = f"http://127.0.0.1:{self.port}"
+        self.server = uvicorn.Server(
+            uvicorn.Config(app, host="127.0.0.1", port=self.port, log_level="warning")
+        )
+        self.thread = threading.Thread(target=self.server.run, daemon=True)
+        self.thread.start()
+        deadline = time.monotonic() + 20
+        while not self.server.started:
+            assert time.monotonic() < deadline, "the service did not start"
+            time.sleep(0.02)
+
+    def holds(self, stream: str) -> bool:
+        with LedgerClient(self.url, retries=0) as client:
+            return client.has_stream(stream)
+
+    def stop(self) -> None:
+        self.server.should_exit = True
+        self.thread.join(timeout=20)
+
+
+@pytest.mark.slow
+def test_adding_a_shard_moves_its_streams_by_export_and_import(nginx: str, tmp_path: Path) -> None:
+    """The procedure of deploy/README.md, "Moving a stream between shards", end to end."""
+    a, b = Served(tmp_path / "a"), Served(tmp_path / "b")
+    c: Served | None = None
+    proxies: list[Proxy] = []
+    try:
+        two = Proxy(nginx, tmp_path / "two", [a, b])
+        proxies.append(two)
+        streams = [f"lockers-{i:02d}" for i in range(12)]
+        json_type = {"Content-Type": "application/json"}
+        for stream in streams:
+            spec = {
+                "stream": stream,
+                "features": 8,
+                "learners": [{"name": "p", "kind": "perceptron"}],
+            }
+            status, data = two.request(
+                "POST",
+                "/v1/streams",
+                {**json_type, "Mistake-Ledger-Stream": stream},
+                json.dumps(spec).encode(),
+            )
+            assert status == 201, data
+            items = [{"id": f"{stream}-{k}", "features": {"f0": k % 2, "f1": 1}} for k in range(6)]
+            body = json.dumps({"items": items}).encode()
+            assert two.request("POST", f"/v1/streams/{stream}/predict", json_type, body)[0] == 200
+            labels = [{"id": item["id"], "label": k % 2} for k, item in enumerate(items[:4])]
+            body = json.dumps({"items": labels}).encode()
+            assert two.request("POST", f"/v1/streams/{stream}/feedback", json_type, body)[0] == 200
+        before = {s: two.request("GET", f"/v1/streams/{s}/ledger")[1] for s in streams}
+
+        # 1. A new shard, and the new list of shards tried on a spare proxy: the streams that
+        #    now hash to the new shard are the ones it does not know (404).
+        c = Served(tmp_path / "c")
+        spare = Proxy(nginx, tmp_path / "spare", [a, b, c])
+        moving = [s for s in streams if spare.request("GET", f"/v1/streams/{s}")[0] == 404]
+        spare.stop()
+        assert moving and len(moving) < len(streams)
+        # 2. Hold them on the proxy in service (a reload with the hold map filled in).
+        two.stop()
+        proxies.remove(two)
+        held = Proxy(nginx, tmp_path / "held", [a, b], hold=tuple(moving))
+        proxies.append(held)
+        for stream in moving:
+            status, _ = held.request("POST", f"/v1/streams/{stream}/feedback", json_type, b"{}")
+            assert status == 503
+        # 3. Export each from its shard, import it into the new one (shard addresses).
+        for stream in moving:
+            old = a if a.holds(stream) else b
+            with LedgerClient(old.url) as source, LedgerClient(c.url) as target:
+                document = source.export_stream(stream)
+                target.import_stream(document)
+                assert source.export_stream(stream)["seq"] == document["seq"]  # nothing since
+        # 4. The new list of shards, nothing on hold; 5. delete the old copies.
+        held.stop()
+        proxies.remove(held)
+        three = Proxy(nginx, tmp_path / "three", [a, b, c])
+        proxies.append(three)
+        for stream in moving:
+            with LedgerClient(a.url if a.holds(stream) else b.url) as old_shard:
+                old_shard.delete_stream(stream)
+        for stream in streams:
+            assert three.request("GET", f"/v1/streams/{stream}/ledger")[1] == before[stream]
+            assert [s.holds(stream) for s in (a, b, c)].count(True) == 1
+            # A label for a prediction made before the move is applied where the stream is now.
+            body = json.dumps({"id": f"{stream}-5", "label": 1}).encode()
+            status, data = three.request("POST", f"/v1/streams/{stream}/feedback", json_type, body)
+            assert (status, data["status"]) == (200, "applied"), (stream, data)
+        assert all(c.holds(s) for s in moving)
+    finally:
+        for proxy in proxies:
+            proxy.stop()
+        for served in (a, b, c):
+            if served is not None:
+                served.stop()

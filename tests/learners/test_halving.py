@@ -95,7 +95,8 @@ CLASSES = {
     "all-5": conjunctions([f"f{i}" for i in range(5)]),
     "monotone-6-and-false": conjunctions([f"f{i}" for i in range(6)], negations=False) + ["false"],
     "two-words-over-70": conjunctions([f"f{i}" for i in range(70)], exact=1)
-    + conjunctions([f"f{i}" for i in range(70)], exact=2)[:300],
+    + conjunctions([f"f{i}" for i in range(70)], exact=2)[:300]
+    + [["f5", "!f5"], ["f68", "f1", "!f68"]],
     "literals-over-200": conjunctions([f"f{i}" for i in range(200)], exact=1)
     + [["f1", "!f2"], ["f3", "f4"], "true"],
 }
@@ -130,6 +131,26 @@ def test_matches_a_reference_run(name: str, labelling: str) -> None:
     assert learner._masks == (name != "literals-over-200")
     if name == "two-words-over-70":
         assert learner._a.shape[1] == 2
+
+
+@pytest.mark.parametrize("flags", [4, 70])  # bit masks of one and of two 64-bit words
+def test_a_rule_with_a_flag_and_its_negation_never_holds(flags: int) -> None:
+    # A conjunction that holds a literal and its negation is false on every item (common
+    # practice: plain logic), so negative labels never refute it and the first positive does.
+    names = [f"f{i}" for i in range(flags)]
+    last = names[-1]
+    never = [["f0", "!f0"], ["f1", "f2", "!f1"], ["!" + last, last]]
+    rules = [*never, ["f0"], ["!f1"], [], *([n] for n in names[1:])]
+    learner = learners.make("halving", features=names, rules=rules)
+    assert learner._masks
+    rng = np.random.default_rng(flags)
+    for _ in range(30):
+        learner.learn([f for f in names if rng.random() < 0.6], 0)
+    left = learner.survivors(limit=len(rules))
+    assert all(rule in left for rule in never)
+    assert ["f0"] not in left and [] not in left
+    learner.learn(names, 1)
+    assert not any(rule in learner.survivors(limit=len(rules)) for rule in never)
 
 
 # -- adversarial streams ----------------------------------------------------------------------

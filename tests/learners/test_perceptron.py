@@ -138,7 +138,7 @@ def test_averaged_with_bias_matches_scikit_learn_fed_each_prefix_in_one_call() -
         assert intercept == pytest.approx(reference.intercept_[0], rel=1e-12, abs=1e-12)
 
 
-# -- the voted perceptron against a direct dense rendering of its definition ------------------------
+# -- the voted perceptron against a direct dense rendering of its definition -----------------------
 
 
 def test_voted_matches_a_dense_rendering_of_the_definition() -> None:

@@ -21,6 +21,7 @@ CONFIGS: dict[str, list[dict[str, Any]]] = {
     "perceptron": [
         {"variant": "classic"},
         {"variant": "margin", "tau": 0.5, "eta": 0.25},
+        {"variant": "margin", "tau": 0.5, "eta": 0.25, "margin": 0.2},
         {"variant": "averaged"},
         {"variant": "voted"},
         {"variant": "classic", "bias": None, "margin": 0.1},
@@ -29,6 +30,7 @@ CONFIGS: dict[str, list[dict[str, Any]]] = {
         {"variant": "pa"},
         {"variant": "pa1", "aggressiveness": 0.5},
         {"variant": "pa2", "aggressiveness": 0.5, "bias": 1.0},
+        {"variant": "pa1", "margin": 0.25},
     ],
     "winnow": [
         {"variant": "winnow2"},
@@ -88,6 +90,39 @@ def test_state_round_trip_continues_exactly(kind: str, params: dict[str, Any]) -
         assert getattr(resumed, attr) == getattr(whole, attr)
     assert resumed.ceiling() == whole.ceiling()
     assert resumed.to_state() == whole.to_state()
+
+
+@pytest.mark.parametrize(("kind", "params"), CASES)
+@pytest.mark.parametrize("flags_only", [False, True])
+def test_ceiling_value_and_counts_agree_with_ceiling_after_every_label(
+    kind: str, params: dict[str, Any], flags_only: bool
+) -> None:
+    # The cheap per-label read (ceiling_value, counts) must be the very number and the very count
+    # that the full ceiling() reports, at every step, also after a restore. flags_only drops the
+    # [0, 1] signal, so that Winnow's ceiling stays claimed (a fractional update withdraws it).
+    data = stream(seed=13, length=160)
+    if flags_only:
+        data = [({k: v for k, v in item.items() if k != "signal"}, y) for item, y in data]
+    learner = learners.make(kind, features=50, **params)
+
+    def agree(learner: learners.Learner) -> None:
+        ceiling = learner.ceiling()
+        assert learner.ceiling_value() == ceiling.value
+        assert learner.counts == ceiling.counts
+        assert learner.counted == (
+            learner.updates if ceiling.counts == "updates" else learner.mistakes
+        )
+        assert learner.standing() == learners.standing(
+            learner.counted, ceiling, learner.contradicted
+        )
+
+    agree(learner)
+    for i, (item, label) in enumerate(data):
+        learner.learn(item, label)
+        agree(learner)
+        if i == 80:
+            learner = learners.from_state(json.loads(json.dumps(learner.to_state())))
+            agree(learner)
 
 
 @pytest.mark.parametrize(("kind", "params"), CASES)

@@ -13,6 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import learners
+import learners.rules
 
 
 def littlestone_warmuth(n_rules: int, best: int, beta: float) -> float:
@@ -113,6 +114,40 @@ def test_bulk_bookkeeping_matches_a_run_over_every_rule(beta: float, mode: str) 
     assert preds == ref_preds
     assert learner.updates == ref_updates
     assert best == ref_best
+
+
+@pytest.mark.parametrize(
+    ("scan", "window"), [(None, None), (0, None), (0, 8)], ids=["scan", "histogram", "window-8"]
+)
+def test_best_mistakes_kept_while_learning_match_a_count_over_every_rule(
+    monkeypatch: pytest.MonkeyPatch, scan: int | None, window: int | None
+) -> None:
+    # m* is kept as it learns (each flag's balance D, its extremes and how many flags sit there),
+    # never recomputed. Checked here against every rule's mistakes counted from the items
+    # themselves (the definition, Littlestone and Warmuth 1994), on a stream where one flag is
+    # always on and the labels lean first to 1 and then to 0, so that flag's D walks far out and
+    # back. The few stored flags are scanned by default; scan = 0 makes it keep its histogram
+    # instead, and window = 8 makes that histogram overflow into its dict.
+    if scan is not None:
+        monkeypatch.setattr(learners.rules, "SPREAD_SCAN", scan)
+    if window is not None:
+        monkeypatch.setattr(learners.rules, "SPREAD_WINDOW", window)
+    names = ["always", *(f"f{i}" for i in range(10))]
+    rules = ["true", "false", *names, *("!" + f for f in names)]
+    rng = np.random.default_rng(21)
+    learner = learners.make("weighted-majority", features=10**6, beta=0.5)
+    mistakes = np.zeros(len(rules), dtype=int)
+    lows = []
+    for t in range(1500):
+        item = ["always", *(f for f in names[1:] if rng.random() < 0.3)]
+        label = int(rng.random() < (0.85 if t < 700 else 0.1))
+        learner.learn(item, label)
+        mistakes += np.array([vote(r, set(item)) for r in rules]) != label
+        assert learner.best_mistakes() == int(mistakes.min()), t
+        lows.append(learner.best_mistakes())
+        if t in (300, 1100):  # the histogram is derived again on restore
+            learner = learners.from_state(json.loads(json.dumps(learner.to_state())))
+    assert lows[-1] > 100  # the stream is far from any single rule: m* grew throughout
 
 
 def test_rule_mistakes_and_best_rules() -> None:

@@ -134,8 +134,9 @@ CHECKS = [
 ]
 # Stream creation has rules the document states in words but JSON Schema cannot hold (serve names
 # a panel learner, the webhook prefix is allow-listed, each learner kind checks its own
-# parameters), so a schema-valid body may rightly get a 422 naming that rule.
-NOT_FULLY_DESCRIBED = {"POST /v1/streams"}
+# parameters), so a schema-valid body may rightly get a 422 naming that rule. The same holds for
+# an imported stream's document (its state must fit together: service/transfer.py).
+NOT_FULLY_DESCRIBED = {"POST /v1/streams", "POST /v1/streams/import"}
 # On an existing stream, what an item may hold depends on the stream (its feature space, its
 # learners' value ranges): the document cannot say it, so no positive acceptance there either.
 SEEDED_CHECKS = [check for check in CHECKS if check is not positive_data_acceptance]

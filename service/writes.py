@@ -1,0 +1,260 @@
+"""The write routes' work, and the fast path that answers their ordinary requests.
+
+:class:`Writes` does what ``POST /v1/streams/{stream}/predict``, ``/feedback`` and ``/examples``
+do once the body is read: check the token's scope, apply the items to the stream
+(``service.registry``) and wait until their event is committed. The routes in ``service.app``
+call it with the body their request model validated.
+
+:class:`FastWrites` (ASGI middleware, inside the body limit) answers the ordinary requests of
+those three routes before the framework sees them: a POST to one of their paths with an
+``application/json`` body that ``schemas.quick_*`` reads as plainly valid, a token the guard
+knows (or none needed) and the store ready. It does the same work with the same items
+(:class:`Writes`) and sends the same JSON; a domain or learner error raised by that work gets
+the one error shape, as the route's handlers give it. Every other request (another path or
+method, another content type, a body the quick readers leave to the model, a missing or unknown
+token, a store not ready) goes on to the framework with its body as read, before anything has
+changed, so each refusal is the route's own: the same status, field, rule and value, found in
+the same order of checks.
+
+Why it exists: per call, routing through the included router, solving the route's dependencies
+and building a model per item cost more CPU than the learners themselves (benchmarks/service.py
+prints the figures).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import re
+import threading
+from collections.abc import Awaitable, Callable
+from concurrent.futures import Future
+from json.encoder import encode_basestring  # what the encoder below uses for text
+from typing import Any
+
+from fastapi.responses import Response
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from learners import LearnerError
+from service import schemas
+from service.errors import ServiceError, Unavailable, error_response, from_learner
+from service.registry import Registry
+from service.security import Guard, Principal, bearer_token
+from service.store import StoreFailed
+
+Write = Callable[[Principal, str, bool, list[Any]], Awaitable[Any]]
+
+# The three routes' paths, as the router matches them ("{stream}" is one path segment).
+_PATH = re.compile(r"/v1/streams/([^/]+)/(predict|feedback|examples)")
+_JSON = b"application/json"
+
+
+# The rendering of starlette's JSONResponse: compact, UTF-8, no NaN.
+_ENCODE = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(",", ":")).encode
+
+
+def render(answer: Any) -> bytes:
+    """``answer`` as the JSON bytes JSONResponse renders. In a batch answer the items share a
+    few mappings (the votes or per-learner outcomes, ``service.streams``): each of those is
+    encoded once per answer, not once per item."""
+    items = answer.get("items") if type(answer) is dict and len(answer) == 1 else None
+    if type(items) is not list or not all(type(item) is dict for item in items):
+        return _ENCODE(answer).encode()
+    shared: dict[int, str] = {}  # id -> JSON of the mappings met so far (all alive meanwhile)
+    parts = []
+    for item in items:
+        fields = []
+        for key, value in item.items():
+            kind = type(value)
+            if kind is dict:
+                text = shared.get(id(value))
+                if text is None:
+                    text = shared[id(value)] = _ENCODE(value)
+            elif kind is str:
+                text = encode_basestring(value)
+            elif kind is int:
+                text = int.__repr__(value)
+            elif kind is bool or value is None:
+                text = "true" if value is True else "false" if value is False else "null"
+            else:
+                text = _ENCODE(value)
+            if type(key) is not str:
+                return _ENCODE(answer).encode()
+            fields.append(encode_basestring(key) + ":" + text)
+        parts.append("{" + ",".join(fields) + "}")
+    return ('{"items":[' + ",".join(parts) + "]}").encode()
+
+
+async def committed(future: Future[int]) -> None:
+    """Wait until an event is committed; a failed store becomes 503."""
+    try:
+        await asyncio.wrap_future(future)
+    except StoreFailed as exc:
+        raise Unavailable(str(exc), field="store", rule="a working store") from exc
+
+
+class Writes:
+    """Predict, feedback and examples on a stream, answered once committed.
+
+    Two things keep the commits cheap under concurrent requests: writes that the event loop
+    runs back to back share one commit (:meth:`_share_commit`, ``Store.hold``), and one commit
+    wakes the loop once for all the requests it answers (:meth:`_committed`).
+    """
+
+    def __init__(self, streams: Registry, guard: Guard) -> None:
+        self.streams = streams
+        self.guard = guard
+        self._holding = False
+        self._lock = threading.Lock()
+        self._finished: list[asyncio.Future[None]] = []  # committed, not yet told on the loop
+        self._rung = False
+
+    async def _committed(self, future: Future[int]) -> None:
+        """Wait until an event is committed (as ``committed``, with fewer wake-ups): the
+        writer thread wakes the event loop once for all the requests one commit answers,
+        not once per request."""
+        if not future.done():
+            loop = asyncio.get_running_loop()
+            waiter = loop.create_future()
+            future.add_done_callback(lambda _: self._ring(loop, waiter))
+            await waiter
+        exc = future.exception()
+        if isinstance(exc, StoreFailed):
+            raise Unavailable(str(exc), field="store", rule="a working store") from exc
+        if exc is not None:
+            raise exc
+
+    def _ring(self, loop: asyncio.AbstractEventLoop, waiter: asyncio.Future[None]) -> None:
+        # In the writer thread, once per committed request.
+        with self._lock:
+            self._finished.append(waiter)
+            if self._rung:
+                return
+            self._rung = True
+        if not loop.is_closed():
+            loop.call_soon_threadsafe(self._wake)
+
+    def _wake(self) -> None:
+        with self._lock:
+            finished, self._finished = self._finished, []
+            self._rung = False
+        for waiter in finished:
+            if not waiter.done():
+                waiter.set_result(None)
+
+    def _share_commit(self) -> None:
+        """Hold the store's next commit until the event loop has run the tasks that are ready
+        now: requests that arrived together then share one commit (one fsync). Idle, the
+        hold ends as soon as this request's step is done."""
+        if not self._holding:
+            self._holding = True
+            self.streams.store.hold()
+            asyncio.get_running_loop().call_soon(self._release)
+
+    def _release(self) -> None:
+        self._holding = False
+        self.streams.store.release()
+
+    async def predict(
+        self, principal: Principal, stream: str, batch: bool, items: list[Any]
+    ) -> Any:
+        self.guard.stream(principal, stream)
+        self._share_commit()
+        results, future = self.streams.predict(stream, items, batch=batch)
+        await self._committed(future)
+        return {"items": results} if batch else results[0]
+
+    async def feedback(
+        self, principal: Principal, stream: str, batch: bool, items: list[Any]
+    ) -> Any:
+        self.guard.stream(principal, stream)
+        self._share_commit()
+        results, future = self.streams.feedback(stream, items, batch=batch)
+        await self._committed(future)
+        return {"items": results} if batch else results[0]
+
+    async def examples(
+        self, principal: Principal, stream: str, batch: bool, items: list[Any]
+    ) -> Any:
+        self.guard.stream(principal, stream)
+        self._share_commit()
+        results, future = self.streams.examples(stream, items, batch=batch)
+        await self._committed(future)
+        return {"items": results} if batch else results[0]
+
+
+class FastWrites:
+    """ASGI middleware: the ordinary requests of the three write routes, answered directly."""
+
+    def __init__(
+        self, app: ASGIApp, *, writes: Writes, guard: Guard, ready: Callable[[], bool]
+    ) -> None:
+        self.app = app
+        self.guard = guard
+        self.ready = ready
+        self.routes: dict[str, tuple[Callable[[Any], Any], Write]] = {
+            "predict": (schemas.quick_predict, writes.predict),
+            "feedback": (schemas.quick_feedback, writes.feedback),
+            "examples": (schemas.quick_examples, writes.examples),
+        }
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        match = None
+        if scope["type"] == "http" and scope["method"] == "POST" and not scope.get("root_path"):
+            match = _PATH.fullmatch(scope["path"])
+        if match is None:
+            await self.app(scope, receive, send)
+            return
+        message = await receive()
+        if message["type"] == "http.request" and not message.get("more_body", False):
+            body = message.get("body", b"")
+            if await self._answer(scope, send, match[1], match[2], body):
+                return
+        delivered = False
+
+        async def replay() -> Message:
+            nonlocal delivered
+            if not delivered:
+                delivered = True
+                return message
+            return await receive()
+
+        await self.app(scope, replay, send)
+
+    async def _answer(self, scope: Scope, send: Send, stream: str, route: str, body: bytes) -> bool:
+        """Answer the request and return True, or return False having changed nothing."""
+        if not body or not self.ready():
+            return False
+        content_type = authorization = None  # the first of each, as the framework reads them
+        for key, value in scope["headers"]:
+            if key == b"content-type":
+                content_type = value if content_type is None else content_type
+            elif key == b"authorization":
+                authorization = value if authorization is None else authorization
+        if content_type != _JSON:
+            return False
+        try:
+            data = schemas.strict_json_loads(body.decode("utf-8"))
+            token = None if authorization is None else bearer_token(authorization.decode("latin-1"))
+            principal = self.guard.identify(token)
+        except (ValueError, ServiceError):  # not JSON text, or no token it knows: the route says
+            return False
+        read, write = self.routes[route]
+        found = read(data)
+        if found is None:
+            return False
+        batch, items = found
+        response: Response
+        try:
+            answer = await write(principal, stream, batch, items)
+            response = Response(render(answer), media_type="application/json")
+        except ServiceError as exc:
+            response = error_response(exc)
+        except LearnerError as exc:
+            response = error_response(from_learner(exc))
+        await response(scope, _no_receive, send)
+        return True
+
+
+async def _no_receive() -> Message:  # a response never reads the request
+    raise RuntimeError("the request body was read already")

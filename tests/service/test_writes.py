@@ -1,0 +1,387 @@
+"""The fast path of the write routes (service/writes.py) against the routes' own validation.
+
+Two differential checks (common practice for a fast path beside a reference one):
+
+- ``schemas.quick_*`` against the request models: on any body, a quick reader either declines
+  (None) or gives exactly what the model gives (same items, same types: numbers as floats,
+  labels as 0 or 1); and on a plainly valid body it never declines, so ordinary requests do
+  take the fast path.
+- The same requests sent to an app with the fast path and to one without it (the framework's
+  routes alone) get the same status and the same JSON, and leave the same ledger.
+
+And the store's hold: writes that arrive together share one commit, and a hold that is never
+released delays a commit only for a moment.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+from typing import Any
+
+import pytest
+from fastapi.responses import JSONResponse
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from prometheus_client import CollectorRegistry
+from pydantic import BaseModel, ValidationError
+
+from service import schemas
+from service.app import create_app
+from service.settings import Settings
+from service.store import Store
+from service.writes import FastWrites, render
+from tests.service.harness import Clock, Running, running
+
+# -- the quick readers against the models ------------------------------------------------------
+
+NAMES = st.one_of(
+    st.sampled_from(["a", "b", "flag_1", "x" * 256]),
+    st.text(max_size=3),
+    st.just(""),
+    st.just("y" * 257),
+)
+NUMBERS = st.one_of(
+    st.integers(-3, 3),
+    st.integers(),  # also far beyond a float's range
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.sampled_from([2**53, 2**53 + 1, -(2**53), 10**400]),
+)
+ODD = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.text(max_size=2),
+    st.builds(schemas.NonFinite, st.sampled_from(["NaN", "Infinity", "-Infinity"])),
+    st.lists(st.integers(), max_size=2),
+    st.dictionaries(st.text(max_size=1), st.integers(), max_size=1),
+)
+FEATURES = st.one_of(
+    st.dictionaries(NAMES, st.one_of(NUMBERS, ODD), max_size=4),
+    st.lists(st.one_of(NAMES, ODD), max_size=4),
+    ODD,
+    NUMBERS,
+)
+IDS = st.one_of(
+    st.none(),
+    st.text(max_size=4),
+    st.text(st.characters(codec=None), min_size=1, max_size=3),  # control chars, surrogates
+    st.sampled_from(["i" * 128, "i" * 129, "", "tab\tinside"]),
+    st.integers(),
+    st.booleans(),
+)
+LABELS = st.one_of(
+    st.sampled_from([0, 1, True, False, 0.0, 1.0, -0.0, 0.5, 2, -1, "1", None]),
+    NUMBERS,
+    ODD,
+)
+KEYS = {
+    "predict": ("id", "features"),
+    "feedback": ("id", "label"),
+    "examples": ("id", "features", "label"),
+}
+VALUES = {"id": IDS, "features": FEATURES, "label": LABELS}
+
+
+def entries(route: str) -> st.SearchStrategy[Any]:
+    """A mapping with some of the route's keys (and now and then an unknown one)."""
+    keys = KEYS[route]
+    return st.fixed_dictionaries(
+        {},
+        optional={
+            **{key: VALUES[key] for key in keys},
+            "extra": st.integers(),
+        },
+    )
+
+
+def bodies(route: str) -> st.SearchStrategy[Any]:
+    entry = entries(route)
+    return st.one_of(
+        entry,
+        st.builds(lambda items: {"items": items}, st.lists(entry, max_size=3)),
+        st.builds(lambda items, one: {**one, "items": items}, st.lists(entry, max_size=2), entry),
+        st.builds(lambda items: {"items": items}, st.one_of(ODD, st.lists(ODD, max_size=2))),
+        ODD,
+        st.lists(entry, max_size=2),
+    )
+
+
+def plain_bodies(route: str) -> st.SearchStrategy[Any]:
+    """Bodies the models accept, as clients send them."""
+    names = st.text(st.characters(codec="utf-8", exclude_categories=("Cs",)), min_size=1,
+                    max_size=8)  # fmt: skip
+    features = st.one_of(
+        st.lists(names, max_size=5, unique=True),
+        st.dictionaries(
+            names,
+            st.one_of(
+                st.integers(-(2**53), 2**53), st.floats(allow_nan=False, allow_infinity=False)
+            ),
+            max_size=5,
+        ),  # fmt: skip
+    )
+    ids = st.text(st.characters(codec="utf-8", exclude_categories=("Cc", "Cs")), min_size=1,
+                  max_size=20)  # fmt: skip
+    fields: dict[str, Any] = {
+        "predict": ({"features": features}, {"id": ids}),
+        "feedback": ({"id": ids, "label": st.sampled_from([0, 1, True, False, 0.0, 1.0])}, {}),
+        "examples": ({"features": features, "label": st.sampled_from([0, 1, True, False])},
+                     {"id": ids}),
+    }[route]  # fmt: skip
+    entry = st.fixed_dictionaries(fields[0], optional=fields[1])
+    batch = st.builds(lambda items: {"items": items}, st.lists(entry, min_size=1, max_size=4))
+    return st.one_of(entry, batch)
+
+
+QUICK = {
+    "predict": (schemas.quick_predict, schemas.PredictRequest),
+    "feedback": (schemas.quick_feedback, schemas.FeedbackRequest),
+    "examples": (schemas.quick_examples, schemas.ExampleRequest),
+}
+
+
+def by_model(route: str, body: Any) -> Any:
+    """What the route's model makes of a body, in the quick readers' form; None if refused."""
+    model: type[BaseModel] = QUICK[route][1]
+    try:
+        parsed: Any = model.model_validate(body)
+    except (ValidationError, OverflowError):
+        return None
+    keys = KEYS[route]
+    if parsed.items is None:
+        return False, [tuple(getattr(parsed, key) for key in keys)]
+    return True, [tuple(getattr(item, key) for key in keys) for item in parsed.items]
+
+
+def same(a: Any, b: Any) -> bool:
+    """Equal as JSON text: 1 and 1.0 differ, as do True and 1."""
+    return json.dumps(a) == json.dumps(b)
+
+
+@pytest.mark.parametrize("route", sorted(QUICK))
+@given(data=st.data())
+@settings(max_examples=300, deadline=None)
+def test_a_quick_reader_declines_or_reads_as_the_model(route: str, data: st.DataObject) -> None:
+    body = data.draw(bodies(route))
+    quick = QUICK[route][0](body)
+    if quick is not None:
+        assert same(quick, by_model(route, body)), (body, quick)
+
+
+@pytest.mark.parametrize("route", sorted(QUICK))
+@given(data=st.data())
+@settings(max_examples=150, deadline=None)
+def test_a_plain_body_takes_the_quick_reader(route: str, data: st.DataObject) -> None:
+    body = data.draw(plain_bodies(route))
+    expected = by_model(route, body)
+    assert expected is not None, body  # the strategy draws bodies the model accepts
+    assert same(QUICK[route][0](body), expected), body
+
+
+# -- answers rendered as JSONResponse renders them ----------------------------------------------
+
+SCALARS = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(),
+    st.floats(allow_nan=False, allow_infinity=False),
+    st.text(max_size=4),
+)
+MAPPINGS = st.dictionaries(st.text(max_size=3), st.one_of(SCALARS, st.lists(SCALARS, max_size=2)),
+                           max_size=3)  # fmt: skip
+
+
+@given(
+    shared=st.lists(MAPPINGS, min_size=1, max_size=3),
+    items=st.lists(
+        st.tuples(st.dictionaries(st.text(max_size=3), SCALARS, max_size=3), st.integers(0, 5)),
+        max_size=6,
+    ),
+    other=st.one_of(SCALARS, st.dictionaries(st.text(max_size=2), SCALARS, max_size=2)),
+)
+@settings(max_examples=200, deadline=None)
+def test_an_answer_renders_as_jsonresponse_renders_it(
+    shared: list[dict[str, Any]], items: list[tuple[dict[str, Any], int]], other: Any
+) -> None:
+    # Items that share mappings (by identity), as a batch's votes and outcomes do.
+    batch = [{**fields, "shared": shared[k % len(shared)]} for fields, k in items]
+    for answer in ({"items": batch}, {"items": batch, "more": other}, other, {"items": other}):
+        assert render(answer) == JSONResponse(answer).body
+
+
+# -- the fast path against the routes alone ----------------------------------------------------
+
+ADMIN = "writes-admin-token-0123456789"
+LANE = "writes-lane-token-0123456789"
+PANEL = [
+    {"name": "elim", "kind": "elimination", "negations": True},
+    {"name": "perc", "kind": "perceptron"},
+    {"name": "win", "kind": "winnow"},
+]
+
+
+def make(data_dir: Path, clock: Clock, fast: bool) -> Any:
+    env = {"MISTAKE_LEDGER_STREAM_TOKENS": json.dumps({LANE: ["lane-*"]})}
+    settings_ = Settings.from_env(env, data_dir=data_dir, admin_token=ADMIN)
+    app = create_app(settings_, clock=clock, registry=CollectorRegistry())
+    if not fast:  # the framework's routes alone
+        app.user_middleware = [m for m in app.user_middleware if m.cls is not FastWrites]
+    return app
+
+
+REQUESTS: list[tuple[str, str, Any, dict[str, str]]] = [
+    # (token, path, body, extra headers)
+    ("admin", "lane-a/predict", {"id": "p1", "features": ["a", "b"]}, {}),
+    ("lane", "lane-a/predict", {"items": [{"id": "p2", "features": {"a": 1, "c": 0.5}},
+                                          {"id": "p3", "features": []}]}, {}),
+    ("lane", "lane-a/predict", {"id": "p1", "features": ["b", "a"]}, {}),  # a duplicate
+    ("lane", "lane-a/predict", {"id": "p1", "features": ["c"]}, {}),  # 409: reused id
+    ("lane", "lane-a/predict", {"id": "p4", "features": {"w": 2}}, {}),  # 422: winnow refuses
+    ("lane", "lane-a/feedback", {"id": "p1", "label": True}, {}),
+    ("lane", "lane-a/feedback", {"id": "p1", "label": 0}, {}),  # 409: another label
+    ("lane", "lane-a/feedback", {"items": [{"id": "p2", "label": 1.0}, {"id": "p1", "label": 1},
+                                           {"id": "nope", "label": 0}]}, {}),
+    ("lane", "lane-a/feedback", {"id": "nope", "label": 1}, {}),  # 404
+    ("lane", "lane-a/examples", {"items": [{"id": "e1", "features": ["a"], "label": 1},
+                                           {"features": {"b": 1}, "label": False}]}, {}),
+    ("lane", "lane-a/examples", {"id": "p3", "features": [], "label": 1}, {}),  # 409: waiting
+    ("lane", "other/predict", {"features": ["a"]}, {}),  # 403: out of scope
+    ("admin", "nowhere/predict", {"id": "n", "features": ["a"]}, {}),  # 404: no stream
+    ("none", "lane-a/predict", {"id": "p9", "features": ["a"]}, {}),  # 401
+    ("wrong", "lane-a/predict", {"id": "p9", "features": ["a"]}, {}),  # 401
+    ("lane", "lane-a/predict", {"id": "p9", "features": ["a"], "x": 1}, {}),  # 422: extra key
+    ("lane", "lane-a/predict", "{\"id\": \"p9\", \"features\": {\"a\": NaN}}", {}),  # 422
+    ("lane", "lane-a/predict", "{\"id\": ", {}),  # 422: not JSON
+    ("lane", "lane-a/predict", {"id": "p9", "features": ["a"]},
+     {"content-type": "text/plain"}),  # 422: not declared JSON
+    ("lane", "lane-a/predict", {"id": "p9", "features": ["a"]},
+     {"content-type": "application/json; charset=utf-8"}),
+    ("lane", "lane-a/feedback", {"items": []}, {}),  # 422: empty batch
+    ("lane", "lane-a/examples", {"features": ["a"], "label": 2}, {}),  # 422
+]  # fmt: skip
+
+
+def generated_ids_masked(answer: Any) -> Any:
+    """The answer with ids the service made up (uuid4 hex, one per item without an id) masked."""
+    text = json.dumps(answer)
+    return json.loads(re.sub(r'"id": "[0-9a-f]{32}"', '"id": "<generated>"', text))
+
+
+def send(api: Running, token: str, path: str, body: Any, headers: dict[str, str]) -> Any:
+    content = body if isinstance(body, str) else json.dumps(body)
+    auth = {"admin": ADMIN, "lane": LANE, "wrong": "not-a-token-of-this-service"}.get(token)
+    sent = {"content-type": "application/json", **headers}
+    if auth:
+        sent["authorization"] = f"Bearer {auth}"
+    return api.post(f"/v1/streams/{path}", content=content.encode(), headers=sent)
+
+
+def test_the_fast_path_answers_as_the_routes_do(tmp_path: Path) -> None:
+    answers: dict[bool, list[tuple[int, Any]]] = {}
+    ledgers: dict[bool, Any] = {}
+    for fast in (True, False):
+        clock = Clock()
+        with running(make(tmp_path / str(fast), clock, fast)) as api:
+            admin = api.with_token(ADMIN)
+            for name in ("lane-a", "other"):
+                body = {"stream": name, "features": 8, "learners": PANEL}
+                assert admin.post("/v1/streams", json=body).status_code == 201
+            out = []
+            for token, path, body, headers in REQUESTS:
+                response = send(api, token, path, body, headers)
+                out.append((response.status_code, generated_ids_masked(response.json())))
+                clock.advance(1)
+            answers[fast] = out
+            ledgers[fast] = admin.get("/v1/streams/lane-a/ledger").json()
+    for request, with_fast, without in zip(REQUESTS, answers[True], answers[False], strict=True):
+        assert with_fast == without, request
+    assert ledgers[True] == ledgers[False]
+    statuses = [status for status, _ in answers[True]]
+    assert statuses.count(200) >= 7 and {401, 403, 404, 409, 422} <= set(statuses)
+
+
+def test_ordinary_requests_do_not_reach_the_framework(tmp_path: Path) -> None:
+    """The fast path answers plain requests itself and hands everything else on."""
+    reached: list[str] = []
+    clock = Clock()
+    app = make(tmp_path, clock, fast=True)
+    with running(app, token=ADMIN) as api:
+        body = {"stream": "lane-a", "features": 8, "learners": PANEL}
+        assert api.post("/v1/streams", json=body).status_code == 201
+        fast = app.middleware_stack  # built by the first request
+        while not isinstance(fast, FastWrites):
+            fast = fast.app
+        inner = fast.app
+
+        async def spy(scope: Any, receive: Any, send: Any) -> None:
+            reached.append(scope["path"])
+            await inner(scope, receive, send)
+
+        fast.app = spy
+        try:
+            assert send_plain(api, "predict", {"id": "q1", "features": ["a"]}) == 200
+            assert send_plain(api, "feedback", {"id": "q1", "label": 1}) == 200
+            assert send_plain(api, "examples", {"features": ["b"], "label": 0}) == 200
+            assert reached == []
+            assert send_plain(api, "predict", {"id": "q2", "features": "a"}) == 422
+            assert send_plain(api, "feedback", {"id": "q1"}) == 422
+            assert reached == ["/v1/streams/lane-a/predict", "/v1/streams/lane-a/feedback"]
+        finally:
+            fast.app = inner
+
+
+def send_plain(api: Running, route: str, body: Any) -> int:
+    return int(api.post(f"/v1/streams/lane-a/{route}", json=body).status_code)
+
+
+# -- the store's hold --------------------------------------------------------------------------
+
+
+def test_writes_during_a_hold_share_one_commit(tmp_path: Path) -> None:
+    store = Store(tmp_path)
+    store.open()
+    store.start()
+    try:
+        store.barrier().result(5)
+        before = store.commits
+        store.hold()
+        futures = [store.append("s", {"type": "noop", "n": i})[1] for i in range(5)]
+        store.release()
+        for future in futures:
+            future.result(5)
+        assert store.commits == before + 1
+        assert [f.result() for f in futures] == sorted(f.result() for f in futures)
+    finally:
+        store.close()
+
+
+def test_a_hold_never_released_delays_a_commit_only_briefly(tmp_path: Path) -> None:
+    store = Store(tmp_path)
+    store.open()
+    store.start()
+    try:
+        store.hold()
+        _, future = store.append("s", {"type": "noop"})
+        assert future.result(5) >= 1  # committed although the hold is still on
+    finally:
+        store.release()
+        store.close()
+
+
+def test_an_integer_too_large_for_a_float_is_named_not_a_crash(service: Running) -> None:
+    """A 401-digit integer is valid JSON; as a feature value it is no finite number (it used to
+    escape validation as an OverflowError, a 500)."""
+    body = {"stream": "s", "features": 4, "learners": [{"name": "p", "kind": "perceptron"}]}
+    assert service.post("/v1/streams", json=body).status_code == 201
+    huge = "1" + "0" * 400
+    for text in ('{"features": {"a": HUGE}}', '{"items": [{"features": {"b": -HUGE}}]}'):
+        response = service.post(
+            "/v1/streams/s/predict",
+            content=text.replace("HUGE", huge),
+            headers={"content-type": "application/json"},
+        )
+        assert response.status_code == 422, response.text
+        error = response.json()["error"]
+        assert error["rule"] == "finite number" and error["field"].endswith(("a", "b")), error
+    assert service.get("/v1/streams/s").json()["known_features"] == 0
