@@ -43,7 +43,7 @@ from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_l
 from starlette.concurrency import run_in_threadpool
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from service import errors, schemas, transfer
+from service import bodies, errors, schemas, transfer, transfer_checks
 from service.alerts import AlertSender
 from service.errors import Unavailable, error_body
 from service.metrics import LedgerCollector
@@ -69,7 +69,7 @@ class StrictJSONRequest(Request):
                 text = body.decode("utf-8")
             except UnicodeDecodeError as exc:
                 raise json.JSONDecodeError("the body is not UTF-8", "", exc.start) from exc
-            self._json = schemas.strict_json_loads(text)
+            self._json = bodies.strict_json_loads(text)
         return self._json
 
 
@@ -223,7 +223,7 @@ def create_app(
         shard_stream: transfer.StreamHeader = None,
     ) -> JSONResponse:
         guard.admin(principal, "create streams")
-        transfer.check_stream_header(shard_stream, body.stream)  # the proxy routes by it
+        transfer_checks.check_stream_header(shard_stream, body.stream)  # the proxy routes by it
         description, future = streams.create(body)
         await committed(future)
         return JSONResponse(description, status_code=201)

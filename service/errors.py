@@ -151,9 +151,12 @@ def error_response(exc: ServiceError) -> JSONResponse:
     )
 
 
-def from_learner(exc: LearnerError) -> InvalidInput:
-    """A learner's refusal of a value (it names field, rule and value) as an InvalidInput."""
-    return InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
+def from_learner(exc: LearnerError, where: str = "", who: str = "") -> InvalidInput:
+    """A learner's refusal of a value (it names field, rule and value) as an InvalidInput; with
+    ``where`` its field is below that path, with ``who`` the message starts with that name."""
+    field = f"{where}.{exc.field}" if where else exc.field
+    message = f"{who}: {exc}" if who else str(exc)
+    return InvalidInput(message, field=field, rule=exc.rule, value=exc.value)
 
 
 def field_path(loc: tuple[Any, ...] | list[Any]) -> str:

@@ -25,8 +25,17 @@ from typing import Any
 
 import learners
 from learners import FeatureSpace, LearnerError
-from service.errors import Conflict, Gone, InvalidInput, NotFound, ServiceError, Unavailable
-from service.schemas import StreamCreate, contains_non_finite
+from service.bodies import contains_non_finite
+from service.errors import (
+    Conflict,
+    Gone,
+    InvalidInput,
+    NotFound,
+    ServiceError,
+    Unavailable,
+    from_learner,
+)
+from service.schemas import StreamCreate
 from service.settings import Settings
 from service.store import Store, StoreFailed
 from service.streams import Features, ItemError, Stream
@@ -172,22 +181,7 @@ class Registry:
     def create(self, body: StreamCreate) -> tuple[dict[str, Any], Future[int]]:
         config = self._config(body)
         with self.lock:
-            if body.stream in self.streams:
-                raise Conflict(
-                    f"Stream {body.stream!r} exists already.",
-                    field="stream",
-                    rule="a new stream id",
-                    value=body.stream,
-                )
-            if len(self.streams) >= self.settings.max_streams:
-                raise Conflict(
-                    f"This service holds its limit of {self.settings.max_streams} streams; "
-                    "delete one or raise MISTAKE_LEDGER_MAX_STREAMS.",
-                    field="stream",
-                    rule=f"at most {self.settings.max_streams} streams",
-                    value=len(self.streams) + 1,
-                )
-            self._writable()
+            self._room_for(body.stream, f"Stream {body.stream!r} exists already.")
             t = self.clock()
             stream = self._new_stream(config, t)
             with stream.lock:
@@ -195,6 +189,21 @@ class Registry:
                 event = {"type": "create", "stream": body.stream, "t": t, "config": config}
                 future = self._log(stream, event)
                 return stream.describe(), future
+
+    def _room_for(self, name: str, taken: str) -> None:
+        """Refuse a new stream (under ``self.lock``): its id is taken (``taken`` says so), the
+        limit on streams is reached, or the store cannot take writes."""
+        if name in self.streams:
+            raise Conflict(taken, field="stream", rule="a new stream id", value=name)
+        if len(self.streams) >= self.settings.max_streams:
+            raise Conflict(
+                f"This service holds its limit of {self.settings.max_streams} streams; "
+                "delete one or raise MISTAKE_LEDGER_MAX_STREAMS.",
+                field="stream",
+                rule=f"at most {self.settings.max_streams} streams",
+                value=len(self.streams) + 1,
+            )
+        self._writable()
 
     def _config(self, body: StreamCreate) -> dict[str, Any]:
         """Check a new stream's panel and return its configuration as plain data."""
@@ -210,7 +219,7 @@ class Registry:
             space_spec: int | list[str] = body.features
             FeatureSpace(space_spec)
         except LearnerError as exc:
-            raise InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value) from exc
+            raise from_learner(exc) from exc
         specs = []
         names: set[str] = set()
         for index, spec in enumerate(body.learners):
@@ -236,12 +245,7 @@ class Registry:
             try:
                 learners.make(spec.kind, features=FeatureSpace(space_spec), **params)
             except LearnerError as exc:
-                raise InvalidInput(
-                    f"Learner {spec.name!r}: {exc}",
-                    field=f"{where}.{exc.field}",
-                    rule=exc.rule,
-                    value=exc.value,
-                ) from exc
+                raise from_learner(exc, where, f"Learner {spec.name!r}") from exc
             specs.append({"name": spec.name, "kind": spec.kind, "params": params})
         serve = body.serve if body.serve is not None else specs[0]["name"]
         if serve not in names:
@@ -289,23 +293,11 @@ class Registry:
         """Add a stream restored from an exported state (checked by the caller): log it as one
         ``import`` event carrying the state, then snapshot it, so the log stays short."""
         with self.lock:
-            if stream.name in self.streams:
-                raise Conflict(
-                    f"Stream {stream.name!r} exists already on this service; delete it first "
-                    "to replace it.",
-                    field="stream",
-                    rule="a new stream id",
-                    value=stream.name,
-                )
-            if len(self.streams) >= self.settings.max_streams:
-                raise Conflict(
-                    f"This service holds its limit of {self.settings.max_streams} streams; "
-                    "delete one or raise MISTAKE_LEDGER_MAX_STREAMS.",
-                    field="stream",
-                    rule=f"at most {self.settings.max_streams} streams",
-                    value=len(self.streams) + 1,
-                )
-            self._writable()
+            self._room_for(
+                stream.name,
+                f"Stream {stream.name!r} exists already on this service; delete it first "
+                "to replace it.",
+            )
             with stream.lock:
                 event = {
                     "type": "import",
@@ -368,13 +360,7 @@ class Registry:
                 for (item_id, features), r in zip(pairs, results, strict=True)
                 if not r["duplicate"]
             ]
-            if fresh:
-                future = self._log(
-                    stream, {"type": "predict", "stream": name, "t": t, "items": fresh}
-                )
-            else:
-                future = self.store.barrier()
-            return results, future
+            return results, self._log_items(stream, "predict", name, t, fresh)
 
     def feedback(
         self, name: str, items: Sequence[tuple[str, int]], batch: bool
@@ -397,12 +383,7 @@ class Registry:
                     stream.volatile["conflicts"] += 1
             if not batch:
                 _raise_single(results[0], items[0][1])
-            if applied:
-                event = {"type": "feedback", "stream": name, "t": t, "items": applied}
-                future = self._log(stream, event)
-            else:
-                future = self.store.barrier()
-            return results, future
+            return results, self._log_items(stream, "feedback", name, t, applied)
 
     def examples(
         self, name: str, items: Sequence[tuple[str | None, Features, int]], batch: bool
@@ -424,14 +405,18 @@ class Registry:
                 for (item_id, f, y), r in zip(triples, results, strict=True)
                 if r["status"] == "applied"
             ]
-            if fresh:
-                event = {"type": "examples", "stream": name, "t": t, "items": fresh}
-                future = self._log(stream, event)
-            else:
-                future = self.store.barrier()
-            return results, future
+            return results, self._log_items(stream, "examples", name, t, fresh)
 
     # -- helpers ---------------------------------------------------------------------------
+
+    def _log_items(
+        self, stream: Stream, kind: str, name: str, t: float, items: list[dict[str, Any]]
+    ) -> Future[int]:
+        """Log the items that changed the stream as one event (the stream's lock is held); when
+        none did, log nothing and wait for everything queued before (a retry's future)."""
+        if not items:
+            return self.store.barrier()
+        return self._log(stream, {"type": kind, "stream": name, "t": t, "items": items})
 
     def _log(self, stream: Stream, event: dict[str, Any]) -> Future[int]:
         """Append the event (the stream's lock is held) and hand its alerts over on commit."""

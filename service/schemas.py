@@ -1,17 +1,15 @@
 """Request and response models of the HTTP interface; the OpenAPI document comes from these.
 
-Request bodies are parsed by :func:`strict_json_loads`, which turns the literals ``NaN``,
-``Infinity`` and ``-Infinity`` (that Python's json module accepts) into :class:`NonFinite`
-markers, so validation rejects them at the exact field with the value named. Validators here raise
-errors that carry their rule in the error context; ``service.errors`` reads it into the one shape.
+Request bodies are parsed by ``service.bodies.strict_json_loads``, which turns the literals
+``NaN``, ``Infinity`` and ``-Infinity`` (that Python's json module accepts) into markers, so
+validation rejects them at the exact field with the value named. Validators here raise errors
+that carry their rule in the error context; ``service.errors`` reads it into the one shape.
 """
 
 from __future__ import annotations
 
-import json
 import math
 import re
-from collections.abc import Callable
 from typing import Annotated, Any, Literal
 
 from pydantic import (
@@ -32,87 +30,13 @@ ID_MAX = 128
 FEATURE_NAME_MAX = 256
 
 
-class NonFinite:
-    """A ``NaN`` or ``Infinity`` literal found in a JSON body; never a valid value."""
-
-    __slots__ = ("text",)
-
-    def __init__(self, text: str) -> None:
-        self.text = text
-
-    def __repr__(self) -> str:
-        return self.text
-
-
-_SURROGATE_ESCAPE = re.compile(r"\\u[dD][89a-fA-F]")
-_DECODER = json.JSONDecoder(parse_constant=NonFinite)
-
-
-def strict_json_loads(data: bytes | str) -> Any:
-    """Parse JSON, keeping NaN/Infinity as :class:`NonFinite` so validation can name them.
-
-    Every way a body can fail to be JSON text raises :class:`json.JSONDecodeError` (which the
-    app reports as a 422 on the field ``body``): besides syntax errors, nesting too deep for the
-    parser, integers with more digits than Python converts, and strings holding a lone UTF-16
-    surrogate escape such as ``"\\ud800"`` (not Unicode text: it could never be echoed back).
-    """
-    doc = data if isinstance(data, str) else ""
-    try:
-        if isinstance(data, str) and not data.startswith("\ufeff"):
-            parsed = _DECODER.decode(data)  # what json.loads does, without a decoder per call
-        else:
-            parsed = json.loads(data, parse_constant=NonFinite)
-    except json.JSONDecodeError:
-        raise
-    except RecursionError as exc:
-        raise json.JSONDecodeError("arrays or objects are nested too deeply", doc, 0) from exc
-    except ValueError as exc:  # an integer literal over Python's int conversion limit
-        reason = str(exc).split(":")[0]
-        raise json.JSONDecodeError(f"a number is too long to read ({reason})", doc, 0) from exc
-    if isinstance(data, str) and _SURROGATE_ESCAPE.search(data) is not None:
-        bad = _lone_surrogate(parsed)
-        if bad is not None:
-            message = f"the string {_shown(bad)} holds a lone surrogate escape (not Unicode text)"
-            raise json.JSONDecodeError(message, doc, 0)
-    return parsed
-
-
-def _lone_surrogate(value: Any) -> str | None:
-    """The first string (key or value) in parsed JSON that holds a lone surrogate, if any."""
-    stack = [value]
-    while stack:
-        item = stack.pop()
-        if isinstance(item, str):
-            if not _is_text(item):
-                return item
-        elif isinstance(item, dict):
-            stack.extend(item.keys())
-            stack.extend(item.values())
-        elif isinstance(item, list):
-            stack.extend(item)
-    return None
-
-
-def _is_text(value: str) -> bool:
+def is_text(value: str) -> bool:
     """True when ``value`` is Unicode text (no lone surrogates), i.e. encodes as UTF-8."""
     try:
         value.encode("utf-8")
     except UnicodeEncodeError:
         return False
     return True
-
-
-def contains_non_finite(value: Any) -> bool:
-    """True when ``value`` (plain parsed JSON) holds a NonFinite or a non-finite float."""
-    if isinstance(value, NonFinite):
-        return True
-    if isinstance(value, float):
-        return not math.isfinite(value)
-    if isinstance(value, dict):
-        return any(contains_non_finite(v) for v in value.values())
-    if isinstance(value, list):
-        return any(contains_non_finite(v) for v in value)
-    return False
 
 
 _NO_VALUE = object()
@@ -129,7 +53,8 @@ def rule_error(
     return PydanticCustomError("invalid_value", "{message}", context)
 
 
-def _shown(value: Any) -> str:
+def shown(value: Any) -> str:
+    """A received value for a message: non-finite numbers as JSON writes them, long ones cut."""
     if isinstance(value, float) and not math.isfinite(value):
         return "NaN" if math.isnan(value) else ("Infinity" if value > 0 else "-Infinity")
     text = repr(value)
@@ -158,14 +83,14 @@ def check_features(value: Any) -> Any:
                 raise rule_error(
                     f"feature names of 1 to {FEATURE_NAME_MAX} characters",
                     f"A feature name must have 1 to {FEATURE_NAME_MAX} characters; "
-                    f"got {_shown(name)}.",
+                    f"got {shown(name)}.",
                     value=name,
                 )
             if not _is_finite_number(number):
                 raise rule_error(
                     "finite number",
                     f"Feature {name!r} must have a finite number as its value; "
-                    f"got {_shown(number)}.",
+                    f"got {shown(number)}.",
                     subfield=f".{name}",
                     value=number,
                 )
@@ -177,7 +102,7 @@ def check_features(value: Any) -> Any:
                 raise rule_error(
                     f"flag names of 1 to {FEATURE_NAME_MAX} characters",
                     f"A list of features holds the names of the flags that are on; "
-                    f"entry {position} is {_shown(name)}.",
+                    f"entry {position} is {shown(name)}.",
                     subfield=f"[{position}]",
                     value=name,
                 )
@@ -193,7 +118,7 @@ def check_features(value: Any) -> Any:
     raise rule_error(
         "mapping of name to number, or list of flag names",
         "The features of an item must be a mapping from name to number or a list of flag "
-        f"names; got {_shown(value)}.",
+        f"names; got {shown(value)}.",
     )
 
 
@@ -204,12 +129,12 @@ def check_label(value: Any) -> int:
     if _is_number(value) and value in (0, 1):
         return int(value)
     raise rule_error(
-        "one of 0, 1, true, false", f"A label must be 0, 1, true or false; got {_shown(value)}."
+        "one of 0, 1, true, false", f"A label must be 0, 1, true or false; got {shown(value)}."
     )
 
 
 # A control character: C0, DEL or C1. Ids are printable: none of these (the document's pattern).
-_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
+CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 ID_PATTERN = r"^[^\x00-\x1f\x7f-\x9f]*$"
 
 
@@ -218,13 +143,13 @@ def check_id(value: Any) -> str:
     if (
         not isinstance(value, str)
         or not 1 <= len(value) <= ID_MAX
-        or _CONTROL.search(value) is not None
-        or not _is_text(value)
+        or CONTROL.search(value) is not None
+        or not is_text(value)
     ):
         raise rule_error(
             f"string of 1 to {ID_MAX} printable characters",
             f"An item id must be a string of 1 to {ID_MAX} printable characters (no control "
-            f"characters); got {_shown(value)}.",
+            f"characters); got {shown(value)}.",
         )
     return value
 
@@ -236,7 +161,7 @@ def check_pattern(pattern: str, what: str) -> Any:
         # fullmatch: "$" alone would also let a trailing newline through ("abc\n").
         if not isinstance(value, str) or not compiled.fullmatch(value):
             raise rule_error(
-                f"matches {pattern}", f"A {what} must match {pattern}; got {_shown(value)}."
+                f"matches {pattern}", f"A {what} must match {pattern}; got {shown(value)}."
             )
         return value
 
@@ -254,7 +179,7 @@ def check_space(value: Any) -> Any:
             if not isinstance(name, str) or not name or len(name) > FEATURE_NAME_MAX:
                 raise rule_error(
                     f"feature names of 1 to {FEATURE_NAME_MAX} characters",
-                    f"Entry {position} of 'features' must be a feature name; got {_shown(name)}.",
+                    f"Entry {position} of 'features' must be a feature name; got {shown(name)}.",
                     subfield=f"[{position}]",
                     value=name,
                 )
@@ -270,14 +195,14 @@ def check_space(value: Any) -> Any:
     raise rule_error(
         "positive integer size or non-empty list of names",
         "The feature space must be a positive integer size (open) or a non-empty list of "
-        f"names (closed); got {_shown(value)}.",
+        f"names (closed); got {shown(value)}.",
     )
 
 
 def check_finite(value: Any) -> Any:
     """A JSON number (not a string or a boolean) that is finite."""
     if not _is_finite_number(value):
-        raise rule_error("finite number", f"A finite number is required; got {_shown(value)}.")
+        raise rule_error("finite number", f"A finite number is required; got {shown(value)}.")
     return value
 
 
@@ -522,138 +447,6 @@ class ExampleRequest(_Strict):
     @model_validator(mode="after")
     def _shape(self) -> ExampleRequest:
         return _single_or_batch(self, ("features", "label"), ("id",))
-
-
-# -- the plain case, read without the models ------------------------------------------------
-#
-# Nearly every body a write route gets is plainly valid: the expected keys, each value of the
-# expected type. ``quick_predict``, ``quick_feedback`` and ``quick_examples`` read such a body
-# (parsed by strict_json_loads) straight into the items the registry takes, in a few passes over
-# plain data instead of a model instance per item. For anything else they return None and the
-# route validates the body with its model, which names the field, the rule and the value. They
-# accept only bodies the models accept and give the same values (numbers as floats, labels as 0
-# or 1): tests/service/test_quick_bodies.py holds them to that.
-
-_NOT_PLAIN: Any = object()
-_EXACT_INT = 2**53  # integers up to this size convert to float exactly, as the models convert
-
-
-def _plain_id(value: Any) -> Any:
-    """An optional item id as the models read it (None when absent), or _NOT_PLAIN."""
-    if value is None:
-        return None
-    if (
-        type(value) is str
-        and 0 < len(value) <= ID_MAX
-        and _CONTROL.search(value) is None
-        and (value.isascii() or _is_text(value))
-    ):
-        return value
-    return _NOT_PLAIN
-
-
-def _plain_features(value: Any) -> Any:
-    """An item's features as the models read them, or _NOT_PLAIN."""
-    if type(value) is list:
-        try:
-            total = len("".join(value))  # a TypeError: an entry is not a string
-        except TypeError:
-            return _NOT_PLAIN
-        if (
-            "" in value
-            or (total > FEATURE_NAME_MAX and max(map(len, value)) > FEATURE_NAME_MAX)
-            or len(set(value)) != len(value)
-        ):
-            return _NOT_PLAIN
-        return value
-    if type(value) is dict:
-        out: dict[str, float] = {}
-        for name, number in value.items():
-            kind = type(number)
-            if kind is int and -_EXACT_INT <= number <= _EXACT_INT:
-                number = float(number)
-            elif kind is not float or number - number != 0.0:  # not a number, or inf or nan
-                return _NOT_PLAIN
-            if type(name) is not str or not 0 < len(name) <= FEATURE_NAME_MAX:
-                return _NOT_PLAIN
-            out[name] = number
-        return out
-    return _NOT_PLAIN
-
-
-def _plain_label(value: Any) -> Any:
-    """A label as the models read it (0 or 1), or _NOT_PLAIN."""
-    if value is True or value is False:
-        return int(value)
-    if (type(value) is int or type(value) is float) and value in (0, 1):
-        return int(value)
-    return _NOT_PLAIN
-
-
-def _read_predict(entry: dict[str, Any]) -> tuple[str | None, Any] | None:
-    item_id = _plain_id(entry.get("id"))
-    features = _plain_features(entry.get("features"))
-    if item_id is _NOT_PLAIN or features is _NOT_PLAIN:
-        return None
-    return item_id, features
-
-
-def _read_feedback(entry: dict[str, Any]) -> tuple[str, int] | None:
-    item_id = _plain_id(entry.get("id"))
-    label = _plain_label(entry.get("label"))
-    if item_id is None or item_id is _NOT_PLAIN or label is _NOT_PLAIN:
-        return None
-    return item_id, label
-
-
-def _read_example(entry: dict[str, Any]) -> tuple[str | None, Any, int] | None:
-    item_id = _plain_id(entry.get("id"))
-    features = _plain_features(entry.get("features"))
-    label = _plain_label(entry.get("label"))
-    if item_id is _NOT_PLAIN or features is _NOT_PLAIN or label is _NOT_PLAIN:
-        return None
-    return item_id, features, label
-
-
-def _quick(body: Any, fields: frozenset[str], read: Callable[[Any], Any]) -> Any:
-    """(batch, items) of a plainly valid single-or-batch body, or None."""
-    if type(body) is not dict or not body.keys() <= fields | {"items"}:
-        return None
-    entries = body.get("items")
-    batch = entries is not None
-    if not batch:
-        entries = [body]
-    elif type(entries) is not list or not entries or any(body.get(f) is not None for f in fields):
-        return None  # not a list, an empty batch, or both shapes at once
-    out = []
-    for entry in entries:
-        if type(entry) is not dict or (batch and not entry.keys() <= fields):
-            return None
-        item = read(entry)
-        if item is None:
-            return None
-        out.append(item)
-    return batch, out
-
-
-_PREDICT = frozenset(("id", "features"))
-_FEEDBACK = frozenset(("id", "label"))
-_EXAMPLE = frozenset(("id", "features", "label"))
-
-
-def quick_predict(body: Any) -> tuple[bool, list[tuple[str | None, Any]]] | None:
-    """(batch, [(id, features)]) of a plainly valid predict body, or None."""
-    return _quick(body, _PREDICT, _read_predict)
-
-
-def quick_feedback(body: Any) -> tuple[bool, list[tuple[str, int]]] | None:
-    """(batch, [(id, label)]) of a plainly valid feedback body, or None."""
-    return _quick(body, _FEEDBACK, _read_feedback)
-
-
-def quick_examples(body: Any) -> tuple[bool, list[tuple[str | None, Any, int]]] | None:
-    """(batch, [(id, features, label)]) of a plainly valid examples body, or None."""
-    return _quick(body, _EXAMPLE, _read_example)
 
 
 # -- responses (documentation of what the routes return) ---------------------------------

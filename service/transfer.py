@@ -20,47 +20,38 @@ nothing reached the old copy while it moved, deploy/README.md). Both are for the
 
 Export takes the stream's lock, writes the state out, and answers once every write the state
 holds is committed, so it never carries a write the source could still lose. Import checks the
-whole document first (the first thing wrong is named by its path, e.g. ``state.pending[3][4]``,
-with the rule and the value) and changes nothing when it fails; then it logs one ``import`` event
-that carries the state, snapshots the stream, and answers once the event is committed. It is
-never unpickled: the document is JSON, checked field by field.
+whole document first (``service.transfer_checks``: the first thing wrong is named by its path,
+e.g. ``state.pending[3][4]``, with the rule and the value) and changes nothing when it fails;
+then it logs one ``import`` event that carries the state, snapshots the stream, and answers once
+the event is committed. It is never unpickled: the document is JSON, checked field by field.
 
 Behind the sharding proxy a create or an import names its stream in the body, which the proxy
 cannot read; it routes by the ``Mistake-Ledger-Stream`` header instead, so when that header is
-present it must equal the body's stream (:func:`check_stream_header`), or the stream would be
-created on a shard where its later requests never arrive.
+present it must equal the body's stream (``transfer_checks.check_stream_header``), or the
+stream would be created on a shard where its later requests never arrive.
 """
 
 from __future__ import annotations
 
-import asyncio
 import json
 import logging
-import re
 from collections.abc import Callable, Sequence
 from concurrent.futures import Future
 from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Depends, Header, Request, Response
-from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, WithJsonSchema
+from pydantic import BaseModel, ConfigDict, Field, WithJsonSchema
 from starlette.concurrency import run_in_threadpool
 
-import learners
-from learners import Encoded, FeatureSpace, LearnerError
 from service import schemas
-from service.errors import InvalidInput, Unavailable, from_validation
 from service.registry import Registry
 from service.security import Guard, Principal
-from service.store import StoreFailed
-from service.streams import DELAY_BUCKETS, Stream
+from service.transfer_checks import FORMAT, HEADER, VERSION, read_document
+from service.writes import committed
 
 log = logging.getLogger("mistake_ledger.transfer")
 
-FORMAT = "mistake-ledger stream"
-VERSION = 1
-HEADER = "Mistake-Ledger-Stream"
 IMPORT_PATH = "/v1/streams/import"
 
 StreamHeader = Annotated[
@@ -72,18 +63,6 @@ StreamHeader = Annotated[
     ),
     WithJsonSchema({"type": "string", "pattern": schemas.STREAM_PATTERN}),
 ]
-
-
-def check_stream_header(given: str | None, stream: str, what: str = "body") -> None:
-    """Refuse a ``Mistake-Ledger-Stream`` header that names another stream than the body."""
-    if given is not None and given != stream:
-        raise InvalidInput(
-            f"The {HEADER} header names stream {given!r} but the {what} is for {stream!r}; "
-            "the sharding proxy routes by the header, so the two must be equal.",
-            field=HEADER,
-            rule=f"equal to the {what}'s 'stream'",
-            value=given,
-        )
 
 
 class StreamExport(BaseModel):
@@ -104,366 +83,6 @@ class StreamExport(BaseModel):
     )
 
 
-# -- the shape of a document, checked field by field --------------------------------------------
-
-Nat = Annotated[int, Field(strict=True, ge=0)]
-Bit = Annotated[int, Field(strict=True, ge=0, le=1)]
-Num = schemas.FiniteFloat
-Print = Annotated[str, Field(pattern=r"^[0-9a-f]{24}$")]  # an item's fingerprint
-State = Literal["within", "near", "exceeded", "contradicted"]
-
-
-class _Plain(BaseModel):
-    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
-
-
-class _Spec(_Plain):
-    name: Any
-    kind: Any
-    params: dict[str, Any]
-
-
-class _Config(_Plain):
-    stream: Any
-    features: Any
-    learners: list[_Spec]
-    serve: Any
-    label_wait_seconds: Any
-    on_exceed: Any
-    near: Any
-    webhook: Any
-
-
-class _Space(_Plain):
-    version: Literal[1]
-    size: Nat
-    closed: bool
-    names: list[str]
-
-
-class _Ceiling(_Plain):
-    value: Num | None
-    formula: str
-    assumption: str
-    source: str
-    counts: Literal["updates", "mistakes"]
-    implied: dict[str, Num | None]
-
-
-class _Epoch(_Plain):
-    epoch: Nat
-    started: Num
-    ended: Num
-    examples: Nat
-    served_mistakes: Nat
-    mistakes: Nat
-    updates: Nat
-    ceiling: _Ceiling
-    served_ceiling: Num | None
-    max_outstanding: Nat
-    state: State
-
-
-class _Alert(_Plain):
-    learner: str
-    epoch: Nat
-    state: Literal["exceeded", "contradicted"]
-    at: Num
-    count: Nat
-    ceiling: Num | None
-    evidence: list[schemas.ItemId]
-    policy: Literal["keep", "restart"]
-
-
-class _AlertCounts(_Plain):
-    exceeded: Nat
-    contradicted: Nat
-
-
-class _Seat(_Plain):
-    name: str
-    kind: str
-    params: dict[str, Any]
-    learner: dict[str, Any]
-    epoch: Nat
-    started: Num
-    served_mistakes: Nat
-    outstanding: Nat
-    max_outstanding: Nat
-    recent_wrong: list[schemas.ItemId]
-    alerted: Literal["exceeded", "contradicted"] | None
-    history: list[tuple[Num, Nat, Nat, Nat, Num | None]]
-    past: list[_Epoch]
-    alerts: list[_Alert]
-    alert_counts: _AlertCounts
-    totals: tuple[Nat, Nat, Nat, Nat, Nat, Nat]
-
-
-class _Counts(_Plain):
-    predictions: Nat
-    labels: Nat
-    examples: Nat
-    expired: Nat
-
-
-class _Delay(_Plain):
-    buckets: list[Nat]
-    sum: Annotated[Num, Field(ge=0)]
-
-
-# [id, t, keys, vals, votes, epochs, fingerprint] and [id, kind, at, fingerprint, label, votes,
-# wrong bits, updated bits], as Stream.to_state writes them.
-_Waiting = tuple[schemas.ItemId, Num, list[Nat], list[Num] | None, list[Bit], list[Nat], Print]
-_Known = tuple[
-    schemas.ItemId,
-    Literal["labelled", "expired", "example"],
-    Num,
-    Print,
-    Bit | None,
-    list[Bit] | None,
-    Nat,
-    Nat,
-]
-
-
-class _State(_Plain):
-    version: Literal[1]
-    config: _Config
-    created: Num
-    last_t: Num
-    space: _Space
-    seats: list[_Seat]
-    pending: list[_Waiting]
-    resolved: list[_Known]
-    counts: _Counts
-    delay: _Delay
-
-
-class _Document(_Plain):
-    format: Literal["mistake-ledger stream"]
-    version: Literal[1]
-    stream: schemas.StreamId
-    exported: Num | None = None
-    seq: Nat | None = None
-    state: _State
-
-
-def _bad(field: str, rule: str, value: Any, message: str | None = None) -> InvalidInput:
-    shown = json.dumps(value) if isinstance(value, str | int | float | None) else repr(value)
-    text = message or f"The field {field!r} of the stream document must be {rule}; got {shown}."
-    return InvalidInput(text, field=field, rule=rule, value=value)
-
-
-_PARAM = re.compile(r"^learners\[(\d+)\]\.(?!(?:name|kind)(?:$|[.\[]))")
-
-
-def _config_field(field: str) -> str:
-    """A field of a stream creation as a field of the document: learners' parameters are in
-    ``params`` there (``learners[0].rules`` -> ``state.config.learners[0].params.rules``)."""
-    return "state.config." + _PARAM.sub(r"learners[\1].params.", field)
-
-
-def read_document(registry: Registry, raw: bytes, header: str | None) -> Stream:
-    """Check an exported document completely and build its stream; raise naming the first
-    field that is wrong. Nothing in the registry or the store changes here."""
-    try:
-        doc = schemas.strict_json_loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise InvalidInput(
-            f"The body is not a JSON document: {exc}.", field="body", rule="valid JSON"
-        ) from exc
-    if not isinstance(doc, dict):
-        raise _bad("body", "a JSON object (an exported stream)", doc)
-    if doc.get("format") != FORMAT:
-        raise _bad("format", f"equal to {FORMAT!r}", doc.get("format"))
-    version = doc.get("version")
-    if type(version) not in (int, float) or version != VERSION:
-        raise _bad(
-            "version",
-            f"{VERSION} (the version this service reads)",
-            version,
-            f"This service reads stream documents of version {VERSION}; got {version!r}.",
-        )
-    try:
-        checked = _Document.model_validate(doc)
-    except ValidationError as exc:
-        raise from_validation(RequestValidationError(exc.errors(include_url=False))) from None
-    check_stream_header(header, checked.stream, "document")
-    config = _checked_config(registry, checked)
-    space = _checked_space(checked.state, config)
-    panel = _checked_seats(checked.state, config, space)
-    _check_ids(checked.state, panel, len(space))
-    state = dict(doc["state"])
-    state["config"] = config
-    try:
-        return Stream.from_state(
-            state,
-            history_points=registry.settings.history_points,
-            max_remembered=registry.settings.max_remembered_ids,
-        )
-    except (LearnerError, KeyError, TypeError, ValueError, IndexError) as exc:  # not expected
-        raise _bad("state", "a stream state as export writes it", str(exc)) from exc
-
-
-def _checked_config(registry: Registry, doc: _Document) -> dict[str, Any]:
-    """The configuration, checked by the very rules of a stream creation on this service."""
-    raw = doc.state.config
-    body: dict[str, Any] = {k: v for k, v in raw if k != "learners"}
-    body["learners"] = []
-    for index, spec in enumerate(raw.learners):
-        for key in ("name", "kind"):
-            if key in spec.params:
-                raise _bad(
-                    f"state.config.learners[{index}].params.{key}",
-                    "a parameter other than name and kind",
-                    key,
-                )
-        body["learners"].append({"name": spec.name, "kind": spec.kind, **spec.params})
-    try:
-        create = schemas.StreamCreate.model_validate(body)
-        config = registry._config(create)
-    except ValidationError as exc:
-        error = from_validation(RequestValidationError(exc.errors(include_url=False)))
-        error.field = _config_field(error.field)
-        raise error from None
-    except InvalidInput as exc:
-        exc.field = _config_field(exc.field)
-        raise
-    if config["stream"] != doc.stream:
-        raise _bad("state.config.stream", "equal to the document's 'stream'", config["stream"])
-    return config
-
-
-def _checked_space(state: _State, config: dict[str, Any]) -> FeatureSpace:
-    space, features = state.space, config["features"]
-    if isinstance(features, list):
-        if not space.closed or space.size != len(features) or space.names != features:
-            raise _bad("state.space", "the closed space of state.config.features", space.names)
-    elif space.closed or space.size != features:
-        raise _bad("state.space.size", f"{features} (state.config.features)", space.size)
-    names = space.names
-    if len(names) > space.size:
-        raise _bad("state.space.names", f"at most {space.size} names", len(names))
-    seen: set[str] = set()
-    for index, name in enumerate(names):
-        if not name or len(name) > schemas.FEATURE_NAME_MAX or name in seen:
-            raise _bad(
-                f"state.space.names[{index}]",
-                f"a unique name of 1 to {schemas.FEATURE_NAME_MAX} characters",
-                name,
-            )
-        seen.add(name)
-    built = FeatureSpace(features)
-    built.adopt(names)
-    return built
-
-
-def _checked_seats(
-    state: _State, config: dict[str, Any], space: FeatureSpace
-) -> list[learners.Learner]:
-    specs = config["learners"]
-    if len(state.seats) != len(specs):
-        raise _bad(
-            "state.seats", f"one seat per learner of the panel ({len(specs)})", len(state.seats)
-        )
-    panel = []
-    for index, (seat, spec) in enumerate(zip(state.seats, specs, strict=True)):
-        where = f"state.seats[{index}]"
-        for key in ("name", "kind", "params"):
-            if getattr(seat, key) != spec[key]:
-                rule = f"equal to state.config.learners[{index}].{key}"
-                raise _bad(f"{where}.{key}", rule, getattr(seat, key))
-        if seat.learner.get("kind") != spec["kind"]:
-            raise _bad(
-                f"{where}.learner.kind", f"equal to {spec['kind']!r}", seat.learner.get("kind")
-            )
-        try:
-            learner = learners.from_state(seat.learner, space)
-        except LearnerError as exc:
-            raise InvalidInput(
-                f"Seat {spec['name']!r}: {exc}",
-                field=f"{where}.learner.{exc.field}",
-                rule=exc.rule,
-                value=exc.value,
-            ) from exc
-        except (KeyError, TypeError, ValueError, IndexError, AttributeError, OverflowError) as exc:
-            raise _bad(
-                f"{where}.learner", "a learner state as export writes it", repr(exc)
-            ) from exc
-        fresh = learners.make(spec["kind"], features=space, **spec["params"])
-        if learner.params() != fresh.params():
-            rule = "the parameters of the seat's learner"
-            raise _bad(f"{where}.learner.params", rule, seat.learner.get("params"))
-        panel.append(learner)
-    return panel
-
-
-def _check_ids(state: _State, panel: list[learners.Learner], known: int) -> None:
-    """Waiting predictions and remembered ids fit the panel, the space and the seats' epochs."""
-    width = len(panel)
-    epochs = [seat.epoch for seat in state.seats]
-    waiting = [0] * width
-    seen: set[str] = set()
-    last = state.created
-    for j, (item_id, t, keys, vals, votes, of_epoch, _) in enumerate(state.pending):
-        where = f"state.pending[{j}]"
-        if item_id in seen:
-            raise _bad(f"{where}[0]", "an id used once", item_id)
-        seen.add(item_id)
-        if not last <= t <= state.last_t:
-            rule = "in order of prediction time, within state.created .. state.last_t"
-            raise _bad(f"{where}[1]", rule, t)
-        last = t
-        for k, key in enumerate(keys):
-            if key >= known:
-                raise _bad(f"{where}[2][{k}]", f"a known feature index (below {known})", key)
-        if len(set(keys)) != len(keys):
-            raise _bad(f"{where}[2]", "distinct feature indices", keys)
-        if vals is not None and len(vals) != len(keys):
-            raise _bad(f"{where}[3]", f"null or {len(keys)} values (one per index)", len(vals))
-        enc = Encoded(list(keys), None if vals is None else list(vals))
-        for learner in panel:
-            try:
-                learner.check(enc)
-            except LearnerError as exc:
-                raise _bad(f"{where}[3]", exc.rule, exc.value) from exc
-        if len(votes) != width:
-            raise _bad(f"{where}[4]", f"{width} votes (one per learner)", votes)
-        if len(of_epoch) != width:
-            raise _bad(f"{where}[5]", f"{width} epochs (one per learner)", of_epoch)
-        for i, epoch in enumerate(of_epoch):
-            if epoch > epochs[i]:
-                raise _bad(f"{where}[5][{i}]", f"at most the seat's epoch {epochs[i]}", epoch)
-            waiting[i] += epoch == epochs[i]
-    for i, seat in enumerate(state.seats):
-        if seat.outstanding != waiting[i]:
-            rule = f"the waiting predictions of its epoch ({waiting[i]})"
-            raise _bad(f"state.seats[{i}].outstanding", rule, seat.outstanding)
-    for j, (item_id, kind, at, _, label, votes_or_none, wrong, updated) in enumerate(
-        state.resolved
-    ):
-        where = f"state.resolved[{j}]"
-        if item_id in seen:
-            raise _bad(f"{where}[0]", "an id used once", item_id)
-        seen.add(item_id)
-        if at > state.last_t:
-            raise _bad(f"{where}[2]", "at most state.last_t", at)
-        if (label is None) != (kind == "expired"):
-            raise _bad(f"{where}[4]", "null for an expired id, else 0 or 1", label)
-        if (votes_or_none is None) != (kind == "example"):
-            raise _bad(f"{where}[5]", "null for a labelled example, else the votes", votes_or_none)
-        if votes_or_none is not None and len(votes_or_none) != width:
-            raise _bad(f"{where}[5]", f"{width} votes (one per learner)", votes_or_none)
-        for position, bits in ((6, wrong), (7, updated)):
-            if bits >= 1 << width:
-                raise _bad(f"{where}[{position}]", f"a bit per learner (below {1 << width})", bits)
-    if len(state.delay.buckets) != len(DELAY_BUCKETS) + 1:
-        rule = f"{len(DELAY_BUCKETS) + 1} counts"
-        raise _bad("state.delay.buckets", rule, len(state.delay.buckets))
-    if state.last_t < state.created:
-        raise _bad("state.last_t", "at least state.created", state.last_t)
-
-
 # -- export ------------------------------------------------------------------------------------
 
 
@@ -473,13 +92,6 @@ def export_document(registry: Registry, name: str) -> tuple[bytes, Future[int]]:
     head = {"format": FORMAT, "version": VERSION, "stream": name, "exported": t, "seq": seq}
     body = json.dumps(head, separators=(",", ":"), allow_nan=False)
     return (body[:-1] + ',"state":' + text + "}").encode(), future
-
-
-async def _committed(future: Future[int]) -> None:
-    try:
-        await asyncio.wrap_future(future)
-    except StoreFailed as exc:
-        raise Unavailable(str(exc), field="store", rule="a working store") from exc
 
 
 # -- the routes --------------------------------------------------------------------------------
@@ -505,7 +117,7 @@ def router(
         """The stream's whole state as one document, to import on another shard."""
         guard.admin(principal, "export streams")
         body, future = await run_in_threadpool(export_document, registry, stream)
-        await _committed(future)
+        await committed(future)
         log.info("exported stream %s (%d bytes)", stream, len(body))
         return Response(body, media_type="application/json")
 
@@ -530,7 +142,7 @@ def router(
         raw = await request.body()
         stream = await run_in_threadpool(read_document, registry, raw, shard_stream)
         description, future = await run_in_threadpool(registry.adopt, stream)
-        await _committed(future)
+        await committed(future)
         log.info("imported stream %s (%d bytes)", stream.name, len(raw))
         return JSONResponse(description, status_code=201)
 

@@ -7,7 +7,7 @@ call it with the body their request model validated.
 
 :class:`FastWrites` (ASGI middleware, inside the body limit) answers the ordinary requests of
 those three routes before the framework sees them: a POST to one of their paths with an
-``application/json`` body that ``schemas.quick_*`` reads as plainly valid, a token the guard
+``application/json`` body that ``bodies.quick_*`` reads as plainly valid, a token the guard
 knows (or none needed) and the store ready. It does the same work with the same items
 (:class:`Writes`) and sends the same JSON; a domain or learner error raised by that work gets
 the one error shape, as the route's handlers give it. Every other request (another path or
@@ -36,7 +36,7 @@ from fastapi.responses import Response
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from learners import LearnerError
-from service import schemas
+from service import bodies
 from service.errors import ServiceError, Unavailable, error_response, from_learner
 from service.registry import Registry
 from service.security import Guard, Principal, bearer_token
@@ -158,27 +158,30 @@ class Writes:
     async def predict(
         self, principal: Principal, stream: str, batch: bool, items: list[Any]
     ) -> Any:
-        self.guard.stream(principal, stream)
-        self._share_commit()
-        results, future = self.streams.predict(stream, items, batch=batch)
-        await self._committed(future)
-        return {"items": results} if batch else results[0]
+        return await self._write(self.streams.predict, principal, stream, batch, items)
 
     async def feedback(
         self, principal: Principal, stream: str, batch: bool, items: list[Any]
     ) -> Any:
-        self.guard.stream(principal, stream)
-        self._share_commit()
-        results, future = self.streams.feedback(stream, items, batch=batch)
-        await self._committed(future)
-        return {"items": results} if batch else results[0]
+        return await self._write(self.streams.feedback, principal, stream, batch, items)
 
     async def examples(
         self, principal: Principal, stream: str, batch: bool, items: list[Any]
     ) -> Any:
+        return await self._write(self.streams.examples, principal, stream, batch, items)
+
+    async def _write(
+        self,
+        apply: Callable[..., tuple[list[Any], Future[int]]],
+        principal: Principal,
+        stream: str,
+        batch: bool,
+        items: list[Any],
+    ) -> Any:
+        """Check the scope, apply the items (a Registry method), wait for their commit."""
         self.guard.stream(principal, stream)
         self._share_commit()
-        results, future = self.streams.examples(stream, items, batch=batch)
+        results, future = apply(stream, items, batch=batch)
         await self._committed(future)
         return {"items": results} if batch else results[0]
 
@@ -193,9 +196,9 @@ class FastWrites:
         self.guard = guard
         self.ready = ready
         self.routes: dict[str, tuple[Callable[[Any], Any], Write]] = {
-            "predict": (schemas.quick_predict, writes.predict),
-            "feedback": (schemas.quick_feedback, writes.feedback),
-            "examples": (schemas.quick_examples, writes.examples),
+            "predict": (bodies.quick_predict, writes.predict),
+            "feedback": (bodies.quick_feedback, writes.feedback),
+            "examples": (bodies.quick_examples, writes.examples),
         }
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
@@ -234,7 +237,7 @@ class FastWrites:
         if content_type != _JSON:
             return False
         try:
-            data = schemas.strict_json_loads(body.decode("utf-8"))
+            data = bodies.strict_json_loads(body.decode("utf-8"))
             token = None if authorization is None else bearer_token(authorization.decode("latin-1"))
             principal = self.guard.identify(token)
         except (ValueError, ServiceError):  # not JSON text, or no token it knows: the route says

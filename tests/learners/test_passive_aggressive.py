@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import math
 from typing import Any
 
@@ -15,15 +14,15 @@ from sklearn.linear_model import SGDClassifier
 import learners
 from learners.features import FeatureSpace
 from learners.passive_aggressive import PassiveAggressive
-from tests.learners.test_perceptron import as_vector, breast_cancer, encoded, separable_stream
+from tests.learners.linear_helpers import (
+    as_vector,
+    encoded,
+    resume_midway,
+    separable_stream,
+    standardized,
+)
 
 VARIANTS = ["pa", "pa1", "pa2"]
-
-
-def standardized() -> tuple[list[str], np.ndarray, np.ndarray]:
-    """Breast-cancer rows scaled per column, so that |x|^2 is near 30 and C = 0.01 clips often."""
-    names, X, y = breast_cancer()
-    return names, (X - X.mean(axis=0)) / X.std(axis=0), y
 
 
 @pytest.mark.parametrize(
@@ -164,23 +163,7 @@ def test_ceiling_counts_mistakes_and_names_its_source() -> None:
 
 @pytest.mark.parametrize("variant", VARIANTS)
 def test_state_round_trip_matches_an_uninterrupted_run(variant: str) -> None:
-    names, X, y = standardized()
-    rows = [(dict(zip(names, X[t], strict=True)), int(y[t])) for t in range(240)]
-    whole = learners.make("passive-aggressive", features=64, variant=variant, bias=0.5)
-    half = learners.make("passive-aggressive", features=64, variant=variant, bias=0.5)
-    for item, label in rows[:101]:
-        whole.learn(item, label)
-        half.learn(item, label)
-    resumed = learners.from_state(json.loads(json.dumps(half.to_state(), allow_nan=False)))
-    assert isinstance(resumed, PassiveAggressive) and isinstance(whole, PassiveAggressive)
-    for item, label in rows[101:]:
-        assert resumed.predict(item) == whole.predict(item)
-        assert resumed.learn(item, label) == whole.learn(item, label)
-    assert (resumed.examples, resumed.mistakes, resumed.updates) == (
-        whole.examples,
-        whole.mistakes,
-        whole.updates,
+    resumed, _ = resume_midway(
+        PassiveAggressive, "passive-aggressive", {"variant": variant, "bias": 0.5}, cut=101
     )
-    assert resumed.weights() == whole.weights()
-    assert resumed.ceiling() == whole.ceiling()
     assert math.isfinite(resumed.ceiling().implied["R"])

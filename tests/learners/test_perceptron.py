@@ -8,31 +8,24 @@ from typing import Any
 
 import numpy as np
 import pytest
-from hypothesis import assume, given, settings
+from hypothesis import given, settings
 from hypothesis import strategies as st
-from sklearn.datasets import load_breast_cancer
 from sklearn.linear_model import Perceptron as SkPerceptron
 from sklearn.linear_model import SGDClassifier
 
 import learners
-from learners.features import Encoded, FeatureSpace
+from learners.features import FeatureSpace
 from learners.perceptron import Perceptron
+from tests.learners.linear_helpers import (
+    as_vector,
+    breast_cancer,
+    encoded,
+    resume_midway,
+    separable_stream,
+    standardized,
+)
 
 VARIANTS = ["classic", "margin", "averaged", "voted"]
-
-
-def breast_cancer() -> tuple[list[str], np.ndarray, np.ndarray]:
-    """The 569 x 30 real-valued rows that ship inside scikit-learn's wheel (no download)."""
-    data = load_breast_cancer()
-    return [str(n) for n in data.feature_names], data.data, data.target
-
-
-def encoded(space: FeatureSpace, names: list[str], X: np.ndarray) -> list[Encoded]:
-    return [space.encode(dict(zip(names, row, strict=True))) for row in X]
-
-
-def as_vector(weights: dict[str, float], names: list[str]) -> np.ndarray:
-    return np.array([weights.get(name, 0.0) for name in names])
 
 
 # -- scikit-learn as the reference ---------------------------------------------------------------
@@ -145,8 +138,7 @@ def test_voted_matches_a_dense_rendering_of_the_definition() -> None:
     # Source: Freund and Schapire 1999, Machine Learning 37(3), the voted perceptron: keep every
     # hypothesis v_i with the number of rows c_i it survived; predict sign(sum c_i sign(v_i . x)).
     # The rendering keeps full dense copies; the learner keeps sparse deltas.
-    names, X, y = breast_cancer()
-    X = (X - X.mean(axis=0)) / X.std(axis=0)
+    names, X, y = standardized()
     X, y = X[:200], y[:200]
     space = FeatureSpace(names)
     ours = Perceptron(space, variant="voted", bias=1.0)
@@ -214,49 +206,6 @@ def test_bias_is_a_constant_feature_of_value_c() -> None:
 
 
 # -- the ceiling holds on separable streams ------------------------------------------------------
-
-
-@st.composite
-def separable_stream(draw: Any) -> dict[str, Any]:
-    """Items with a planted unit vector u (bias included) and a margin; an adversarial order."""
-    seed = draw(st.integers(0, 2**32 - 1))
-    d = draw(st.integers(1, 6))
-    bias = draw(st.sampled_from([None, 1.0, 0.5]))
-    size = draw(st.integers(1, 50))
-    scale = draw(st.floats(0.2, 5.0))
-    gamma = draw(st.floats(0.01, 0.4)) * scale
-    order = draw(st.sampled_from(["given", "hardest_first", "alternating", "hardest_repeated"]))
-    epochs = draw(st.integers(1, 3))
-    rng = np.random.default_rng(seed)
-    dim = d + (bias is not None)
-    u = rng.normal(size=dim)
-    u /= np.linalg.norm(u)
-    X = rng.uniform(-scale, scale, size=(40 * size, d))
-    aug = X if bias is None else np.hstack([X, np.full((len(X), 1), bias)])
-    m = aug @ u
-    keep = np.flatnonzero(np.abs(m) >= gamma)[:size]
-    assume(len(keep) > 0)
-    X, m = X[keep], m[keep]
-    by_margin = [int(i) for i in np.argsort(np.abs(m))]
-    if order == "hardest_first":
-        rank = by_margin
-    elif order == "alternating":  # the hardest positive, the hardest negative, and so on
-        pos = [i for i in by_margin if m[i] > 0]
-        neg = [i for i in by_margin if m[i] < 0]
-        rank = [i for k in range(max(len(pos), len(neg))) for i in pos[k : k + 1] + neg[k : k + 1]]
-    elif order == "hardest_repeated":
-        rank = by_margin[:1] * 10 + list(range(len(m)))
-    else:
-        rank = list(range(len(m)))
-    rows = [
-        ({f"x{j}": float(v) for j, v in enumerate(X[i])}, int(m[i] > 0))
-        for _ in range(epochs)
-        for i in rank
-    ]
-    # The true margin of u, a hair below so that rounding in R and gamma cannot turn an exact
-    # tie into a false failure.
-    margin = float(np.min(np.abs(m))) * (1 - 1e-9)
-    return {"rows": rows, "bias": bias, "margin": margin, "d": d}
 
 
 @settings(max_examples=80, deadline=None)
@@ -357,27 +306,9 @@ def test_ceiling_texts_name_their_assumption_and_source() -> None:
 @pytest.mark.parametrize("variant", VARIANTS)
 def test_state_round_trip_matches_an_uninterrupted_run(variant: str) -> None:
     # A JSON round trip after a prefix, then the rest: same predictions, counts and weights.
-    names, X, y = breast_cancer()
-    X = (X - X.mean(axis=0)) / X.std(axis=0)
-    rows = [(dict(zip(names, X[t], strict=True)), int(y[t])) for t in range(240)]
     extra = {"tau": 0.7, "eta": 0.3} if variant == "margin" else {}
-    whole = learners.make("perceptron", features=64, variant=variant, **extra)
-    half = learners.make("perceptron", features=64, variant=variant, **extra)
-    for item, label in rows[:97]:
-        whole.learn(item, label)
-        half.learn(item, label)
-    resumed = learners.from_state(json.loads(json.dumps(half.to_state(), allow_nan=False)))
-    assert isinstance(resumed, Perceptron) and isinstance(whole, Perceptron)
-    for item, label in rows[97:]:
-        assert resumed.predict(item) == whole.predict(item)
-        assert resumed.learn(item, label) == whole.learn(item, label)
-    assert (resumed.examples, resumed.mistakes, resumed.updates) == (
-        whole.examples,
-        whole.mistakes,
-        whole.updates,
-    )
-    assert resumed.weights() == whole.weights()
-    assert resumed.ceiling() == whole.ceiling()
+    resumed, whole = resume_midway(Perceptron, "perceptron", {"variant": variant, **extra}, cut=97)
+    assert resumed.updates > 0 and resumed.variant == whole.variant == variant
 
 
 def test_corrupt_state_is_refused_with_the_field_named() -> None:

@@ -34,7 +34,7 @@ from prometheus_client import CollectorRegistry
 from service.app import create_app
 from service.settings import Settings
 from service.store import FILE_NAME
-from service.transfer import FORMAT, HEADER
+from service.transfer_checks import FORMAT, HEADER
 from tests.service.conftest import MakeApp
 from tests.service.harness import Clock, Running, running
 

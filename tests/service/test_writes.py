@@ -2,7 +2,7 @@
 
 Two differential checks (common practice for a fast path beside a reference one):
 
-- ``schemas.quick_*`` against the request models: on any body, a quick reader either declines
+- ``service.bodies.quick_*`` against the request models: on any body, a quick reader either declines
   (None) or gives exactly what the model gives (same items, same types: numbers as floats,
   labels as 0 or 1); and on a plainly valid body it never declines, so ordinary requests do
   take the fast path.
@@ -29,6 +29,7 @@ from pydantic import BaseModel, ValidationError
 
 from service import schemas
 from service.app import create_app
+from service.bodies import NonFinite, quick_examples, quick_feedback, quick_predict
 from service.settings import Settings
 from service.store import Store
 from service.writes import FastWrites, render
@@ -52,7 +53,7 @@ ODD = st.one_of(
     st.none(),
     st.booleans(),
     st.text(max_size=2),
-    st.builds(schemas.NonFinite, st.sampled_from(["NaN", "Infinity", "-Infinity"])),
+    st.builds(NonFinite, st.sampled_from(["NaN", "Infinity", "-Infinity"])),
     st.lists(st.integers(), max_size=2),
     st.dictionaries(st.text(max_size=1), st.integers(), max_size=1),
 )
@@ -135,9 +136,9 @@ def plain_bodies(route: str) -> st.SearchStrategy[Any]:
 
 
 QUICK = {
-    "predict": (schemas.quick_predict, schemas.PredictRequest),
-    "feedback": (schemas.quick_feedback, schemas.FeedbackRequest),
-    "examples": (schemas.quick_examples, schemas.ExampleRequest),
+    "predict": (quick_predict, schemas.PredictRequest),
+    "feedback": (quick_feedback, schemas.FeedbackRequest),
+    "examples": (quick_examples, schemas.ExampleRequest),
 }
 
 
