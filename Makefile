@@ -27,6 +27,7 @@ demo: $(BIN)/.installed
 bench: $(BIN)/.installed
 	$(BIN)/python -m benchmarks.learners
 	$(BIN)/python -m benchmarks.service
+	$(BIN)/python -m benchmarks.transfer
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache
