@@ -18,7 +18,8 @@ def test_make_demo_once_from_a_clean_checkout(tmp_path: Path) -> None:
     if shutil.which("git") is None or not (ROOT / ".git").exists():
         pytest.skip("needs the project's git checkout")
     readme = (ROOT / "README.md").read_text()
-    assert "make demo ONCE=1" in readme and "make test" in readme  # the two commands it documents
+    # The README's quick start: the two commands it documents.
+    assert "make demo ONCE=1" in readme and "make test" in readme
     checkout = tmp_path / "checkout"
     subprocess.run(["git", "clone", "-q", str(ROOT), str(checkout)], check=True)
     env = {k: v for k, v in os.environ.items() if not k.startswith(("VIRTUAL_ENV", "PYTHONPATH"))}
@@ -35,7 +36,8 @@ def test_make_demo_once_from_a_clean_checkout(tmp_path: Path) -> None:
     )
     out = done.stdout + done.stderr
     assert done.returncode == 0, out[-3000:]
-    # The three streams of the invented scenario, their tables and the live page's address.
+    # The README's quick start (what it says the demo prints and writes), and the invented
+    # scenario's three streams (demo_data/streams.json).
     for stream in ("lockers-hold", "lockers-escalate", "lockers-reweigh"):
         assert stream in out
         for suffix in ("png", "svg"):

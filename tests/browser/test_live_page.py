@@ -52,6 +52,8 @@ LEARNERS = [
     {"name": "plain", "kind": "elimination"},
     {"name": "with-negations", "kind": "elimination", "negations": True},
 ]
+# Worked by hand: every monotone conjunction is true when every flag is on, so label 0 there is
+# a false positive, which THEORY.md (Conjunctions) calls proof against the assumption.
 # Held for review when heavy and dropped late; one review says "release" for an item with every
 # flag on, which no monotone conjunction allows: the plain learner is contradicted by it.
 WRONG_ID = "drop-030"
@@ -150,7 +152,7 @@ class Replay(threading.Thread):
             self.error = exc
 
     def _replay(self) -> None:
-        headers = {"Authorization": f"Bearer {STREAM_TOKEN}"}
+        headers = {"Authorization": f"Bearer {STREAM_TOKEN}"}  # RFC 6750 §2.1
         url = f"{self.base}/v1/streams/{STREAM}"
         items = _items()
         with httpx.Client(headers=headers, timeout=10) as client:
@@ -189,7 +191,7 @@ def test_page_follows_a_replay_and_shows_the_alert(service: Service, tmp_path: P
         },
         timeout=10,
     )
-    assert created.status_code == 201, created.text
+    assert created.status_code == 201, created.text  # RFC 9110 §15.3.2: 201 Created
 
     requested: list[str] = []
     problems: list[str] = []
@@ -224,6 +226,7 @@ def test_page_follows_a_replay_and_shows_the_alert(service: Service, tmp_path: P
                 page.goto(service.base + "/")
 
                 # Tokens are configured: the page asks for one, then shows the stream.
+                # DESIGN.md (Interfaces: a page at /; Security: tokens).
                 page.wait_for_function(
                     "document.getElementById('status').textContent.includes('token')"
                 )
@@ -244,6 +247,7 @@ def test_page_follows_a_replay_and_shows_the_alert(service: Service, tmp_path: P
                     time.sleep(0.2)
                 if replay.error is not None:
                     raise replay.error
+                # DESIGN.md (Interfaces): mistakes against ceilings over time, so it must move.
                 assert len(seen) >= 3, f"the page showed only {seen} during the replay"
 
                 ledger = _ledger(service.base)
@@ -256,6 +260,7 @@ def test_page_follows_a_replay_and_shows_the_alert(service: Service, tmp_path: P
                 assert final["plain"]["examples"] == ITEMS
 
                 # Every learner: a panel with its lines, and its state as the service reports it.
+                # Reference: the service's own ledger, read over HTTP (DESIGN.md, Words: ledger).
                 for name, row in final.items():
                     figure = page.locator(f'figure.chart[data-learner="{name}"]')
                     assert figure.locator('path[data-series="updates"]').count() == 1
@@ -266,7 +271,8 @@ def test_page_follows_a_replay_and_shows_the_alert(service: Service, tmp_path: P
                     assert badge.get_attribute("data-state") == row["state"]
                     assert figure.get_attribute("data-state") == row["state"]
 
-                # The contradiction is an alert, listed with the item that proved it.
+                # The contradiction is an alert, listed with the item that proved it (worked
+                # by hand above; DESIGN.md, Accounting).
                 assert final["plain"]["state"] == "contradicted"
                 alert = page.locator('li.alert[data-learner="plain"][data-state="contradicted"]')
                 alert.wait_for()
@@ -275,6 +281,8 @@ def test_page_follows_a_replay_and_shows_the_alert(service: Service, tmp_path: P
                 assert plain.locator('path[data-series="alert"]').count() >= 1
 
                 # Nothing the service sent was missing or mangled on the way to the screen.
+                # ("undefined", "NaN", "[object Object]" are JavaScript's renderings of missing
+                # or non-numeric values: common practice.)
                 shown = page.inner_text("main")
                 for junk in ("undefined", "NaN", "[object Object]"):
                     assert junk not in shown
@@ -286,6 +294,7 @@ def test_page_follows_a_replay_and_shows_the_alert(service: Service, tmp_path: P
     finally:
         replay.join(timeout=30)
 
+    # The client's rule: no network beyond loopback; the page fetches only from this service.
     assert problems == []
     outside = [url for url in requested if not url.startswith(service.base + "/")]
     assert outside == [], f"the page fetched from outside the service: {outside}"

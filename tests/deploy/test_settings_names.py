@@ -10,6 +10,7 @@ from tests.deploy.tools import DEPLOY
 NAME = re.compile(re.escape(ENV_PREFIX) + r"[A-Z0-9_]+")
 
 
+# STYLE.md (Configuration): one typed settings object read from prefixed environment variables.
 def test_environment_names_in_deploy_files_are_settings() -> None:
     fields = {ENV_PREFIX + name.upper() for name in Settings.model_fields}
     used: dict[str, set[str]] = {}
@@ -19,7 +20,7 @@ def test_environment_names_in_deploy_files_are_settings() -> None:
                 used.setdefault(name, set()).add(str(path.relative_to(DEPLOY)))
     unknown = {name: files for name, files in used.items() if name not in fields}
     assert not unknown, f"not settings of service.settings.Settings: {unknown}"
-    # The token settings the container and the unit rely on are among them.
+    # The token settings the container and the unit rely on are among them (DESIGN.md, Security).
     assert {
         ENV_PREFIX + "ADMIN_TOKEN",
         ENV_PREFIX + "STREAM_TOKENS",

@@ -63,12 +63,14 @@ def test_runs_serve_on_loopback_with_the_state_directory(service: dict[str, list
         "--data-dir",
         "/var/lib/mistake-ledger",
     ]
+    # Loopback-only when no token is set: DESIGN.md (Security), common practice.
     # StateDirectory=NAME is created as /var/lib/NAME (systemd.exec(5)).
     assert "/var/lib/" + one(service, "StateDirectory") == args[args.index("--data-dir") + 1]
 
 
 def test_is_hardened(service: dict[str, list[str]]) -> None:
-    # The settings the brief asks for, plus the common-practice sandbox (systemd.exec(5)).
+    # The common-practice sandbox (systemd.exec(5)); Restart= in systemd.service(5);
+    # IPAddressAllow=/IPAddressDeny= in systemd.resource-control(5) (from memory).
     assert one(service, "DynamicUser") == "yes" or one(service, "User") not in {"", "root", "0"}
     expected = {
         "NoNewPrivileges": "yes",
@@ -87,6 +89,7 @@ def test_is_hardened(service: dict[str, list[str]]) -> None:
 
 
 def test_tokens_come_from_an_environment_file(service: dict[str, list[str]]) -> None:
+    # EnvironmentFile= (systemd.exec(5)); keeping secrets out of the unit: common practice.
     env_file = one(service, "EnvironmentFile")
     assert env_file.lstrip("-").startswith("/etc/mistake-ledger/")
     # No secret is written into the unit itself.
@@ -95,6 +98,7 @@ def test_tokens_come_from_an_environment_file(service: dict[str, list[str]]) -> 
 
 
 def test_the_cli_accepts_the_command_line(service: dict[str, list[str]]) -> None:
+    # Reference: click's own parser (make_context) reads ExecStart's arguments.
     cli = pytest.importorskip("service.cli", reason="service.cli is not written yet")
     group = cli.main
     args = exec_args(service)[1:]
@@ -122,6 +126,7 @@ def test_systemd_analyze_verify(tmp_path: Path) -> None:
     result = subprocess.run(
         [analyze, "verify", str(unit)], capture_output=True, text=True, timeout=60, check=False
     )
-    # systemd-analyze prints unknown keys and unparsable values but still exits 0.
+    # systemd-analyze prints unknown keys and unparsable values but still exits 0
+    # (systemd-analyze(1) verify; exit status from memory).
     assert result.returncode == 0, result.stderr
     assert result.stderr.strip() == "", result.stderr

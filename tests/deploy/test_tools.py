@@ -9,6 +9,8 @@ from tests.deploy.tools import require_tool
 MISSING = "mistake-ledger-no-such-program"
 
 
+# CI=true is set by the common CI services (common practice, from memory); pytest.skip and
+# pytest.fail raise their own exceptions (pytest documentation).
 def test_missing_tool_skips_outside_ci(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.delenv("CI", raising=False)
     with pytest.raises(pytest.skip.Exception):
@@ -23,4 +25,4 @@ def test_missing_tool_fails_in_ci(monkeypatch: pytest.MonkeyPatch) -> None:
 
 def test_present_tool_is_found(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setenv("CI", "true")
-    assert require_tool("sh").endswith("/sh")
+    assert require_tool("sh").endswith("/sh")  # POSIX systems ship /bin/sh: common practice

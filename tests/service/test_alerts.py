@@ -72,6 +72,8 @@ def hooked_app(make_app: MakeApp, hook: Hook) -> Any:
     )
 
 
+# DESIGN.md (Accounting): a contradiction raises an alert; THEORY.md (Conjunctions): a false
+# positive proves the labels are not a monotone conjunction.
 def test_a_contradiction_is_recorded_counted_and_sent(make_app: MakeApp, hook: Hook) -> None:
     with running(hooked_app(make_app, hook)) as service:
         body = {
@@ -93,6 +95,7 @@ def test_a_contradiction_is_recorded_counted_and_sent(make_app: MakeApp, hook: H
         assert row["alerts"][0]["evidence"] == ["fp"]
         assert ledger["alerts"] == row["alerts"]
         metrics = service.get("/metrics").text
+        # Prometheus exposition format (text-based format documentation): `_total` counters.
         assert (
             'mistake_ledger_alerts_total{learner="elim",state="contradicted",stream="dock"} 1.0'
             in metrics
@@ -107,12 +110,13 @@ def test_a_contradiction_is_recorded_counted_and_sent(make_app: MakeApp, hook: H
             "contradicted",
         )
         assert alert["evidence"] == ["fp"]
-        assert hook.attempts == 2  # the first answer was a 500: retried
+        assert hook.attempts == 2  # the first answer was a 500: retried (common practice)
         # Staying contradicted raises no second alert.
         service.post("/v1/streams/dock/examples", json={"features": ["a", "b"], "label": 0})
         assert len(service.get("/v1/streams/dock/ledger").json()["alerts"]) == 1
 
 
+# DESIGN.md (Security): webhook targets are an explicit allow list; 422 RFC 9110 §15.5.21.
 def test_a_webhook_outside_the_allow_list_is_refused(make_app: MakeApp, hook: Hook) -> None:
     with running(hooked_app(make_app, hook)) as service:
         for url in (
@@ -131,6 +135,8 @@ def test_a_webhook_outside_the_allow_list_is_refused(make_app: MakeApp, hook: Ho
         assert service.get("/v1/streams").json()["streams"] == []
 
 
+# Prefix match on a path boundary ("/hooks/" allows "/hooks/a", "/exact" not "/exactly"):
+# common practice.
 def test_allow_list_matching() -> None:
     allow = ["http://127.0.0.1:9000/hooks/", "http://localhost:9001/exact"]
     assert allowed("http://127.0.0.1:9000/hooks/a", allow)
@@ -155,7 +161,8 @@ def test_delivery_gives_up_after_its_retries() -> None:
     sender = AlertSender(settings, post=post, sleep=pauses.append)
     assert not sender._deliver("http://127.0.0.1:1/x", {"state": "exceeded"})
     assert len(calls) == 4
-    assert pauses == [0.5, 1.0, 2.0]  # exponential backoff between the attempts
+    # Exponential backoff between the attempts (common practice): 0.5 * 2^i for i = 0, 1, 2.
+    assert pauses == [0.5, 1.0, 2.0]
     assert not sender._deliver("http://127.0.0.1:2/x", {"state": "exceeded"})
     assert len(calls) == 4  # a URL that left the allow list is never called
 
@@ -177,6 +184,7 @@ def margin_stream(service: Running, policy: str) -> None:
     assert service.post("/v1/streams", json=body).status_code == 201
 
 
+# DESIGN.md (Accounting): exceeded when updates > U; policy keep. Ceiling 2 worked above.
 def test_exceeding_the_ceiling_alerts_and_keeps_learning(service: Running) -> None:
     margin_stream(service, "keep")
     for item in EXCEEDING:
@@ -195,6 +203,7 @@ def test_restart_policy_starts_a_new_epoch_and_keeps_the_old_ledger(service: Run
         service.post("/v1/streams/belt/examples", json=item)
     row = service.get("/v1/streams/belt/ledger").json()["learners"][0]
     # Epoch 0 ended at its third update (exceeded); epoch 1 learned x3 and x4 afresh.
+    # DESIGN.md (Accounting): restart as a new epoch; near = 80% of U by default, 2 >= 0.8 * 2.
     assert row["epoch"] == 1
     assert row["updates"] == 2 and row["examples"] == 2 and row["state"] == "near"
     (old,) = row["epochs"]
@@ -207,6 +216,7 @@ def test_restart_policy_starts_a_new_epoch_and_keeps_the_old_ledger(service: Run
 def test_served_mistakes_of_an_old_epoch_are_not_counted_in_the_new(service: Running) -> None:
     margin_stream(service, "restart")
     url = "/v1/streams/belt"
+    # DESIGN.md (Accounting): the old epoch's ledger is kept apart; the comparison spans all.
     # Two predictions made in epoch 0, both answered 0 by perc (w = 0, score 0).
     service.post(
         f"{url}/predict",

@@ -58,6 +58,7 @@ def test_labels_right_after_each_answer_give_the_worked_count(service: Running) 
         ).json()
         assert result["status"] == "applied"
     # Served answers follow the worked sequence: 0, 0 (the two updates), then all correct.
+    # Worked by hand above (elimination rule, THEORY.md: Conjunctions).
     assert answers == [0, 0, 0, 1, 0, 1]
     ledger = service.get("/v1/streams/lockers-north/ledger").json()
     row = learner(ledger)
@@ -68,6 +69,7 @@ def test_labels_right_after_each_answer_give_the_worked_count(service: Running) 
     assert row["ceiling"]["value"] == 4
     assert row["ceiling"]["counts"] == "updates"
     # No label was outstanding at either update: G = 0, served ceiling (1 + 0) * 4.
+    # THEORY.md: Delayed labels, served <= (1 + G) U.
     assert row["max_outstanding"] == 0
     assert row["served_ceiling"] == 4
     assert row["state"] == "within"
@@ -88,6 +90,7 @@ def test_delayed_labels_count_served_mistakes_and_outstanding_labels(service: Ru
         True, True, False, False, False, False,
     ]  # fmt: skip
     row = learner(service.get("/v1/streams/lockers-north/ledger").json())
+    # Worked by hand; bound from THEORY.md: Delayed labels, served <= (1 + G) U.
     # Served mistakes: items 1, 2 and 4 (label 1, answered 0). Updates: still 2, as labelled in
     # the same order. At update 1, 5 other predictions waited; at update 2, 4: G = 5.
     assert row["served_mistakes"] == 3
@@ -105,10 +108,13 @@ def test_examples_teach_every_learner_without_served_mistakes(service: Running) 
     results = service.post("/v1/streams/lockers-north/examples", json={"items": items}).json()
     assert [r["status"] for r in results["items"]] == ["applied"] * 6
     row = learner(service.get("/v1/streams/lockers-north/ledger").json())
+    # Worked by hand (2 updates, above); DESIGN.md (Accounting): a served mistake needs
+    # a served answer, and examples have none.
     assert (row["updates"], row["served_mistakes"], row["examples"]) == (2, 0, 6)
     # The learned conjunction now answers "a and b".
     answer = service.post("/v1/streams/lockers-north/predict", json={"features": ["a", "b"]})
     assert answer.json()["label"] == 1
+    # DESIGN.md (Feedback rules): the same id and label again is a duplicate.
     again = service.post("/v1/streams/lockers-north/examples", json=items[0]).json()
     assert again["status"] == "duplicate"
 
@@ -124,6 +130,8 @@ def test_every_learner_votes_and_the_serving_one_answers(service: Running) -> No
         "serve": "neg",
     }
     assert service.post("/v1/streams", json=body).status_code == 201
+    # THEORY.md (Conjunctions): elimination starts with all n variables, or all 2n literals.
+    # DESIGN.md (Accounting): every learner votes, the serving learner answers.
     # Before any update: monotone requires every flag (predicts 1 on {a, b}); with negations
     # the hypothesis holds every literal and is always false (predicts 0).
     answer = service.post("/v1/streams/panel/predict", json={"features": ["a", "b"]}).json()
@@ -144,13 +152,14 @@ def test_stream_management(service: Running, clock: Clock) -> None:
             "learners": [{"name": "x", "kind": "elimination"}],
         },
     )
-    assert again.status_code == 409
+    assert again.status_code == 409  # RFC 9110 §15.5.10: 409 Conflict (name taken)
     assert again.json()["error"]["field"] == "stream"
     create(service, "lockers-south")
     listed = service.get("/v1/streams").json()["streams"]
     assert [s["stream"] for s in listed] == ["lockers-north", "lockers-south"]
     assert service.get("/v1/streams/lockers-south").json()["stream"] == "lockers-south"
     assert service.delete("/v1/streams/lockers-south").status_code == 200
+    # RFC 9110 §15.5.5: 404 Not Found once the stream is deleted.
     assert service.get("/v1/streams/lockers-south").status_code == 404
     assert service.post("/v1/streams/lockers-south/predict", json={"features": []}).status_code == (
         404
@@ -162,6 +171,8 @@ def test_stream_management(service: Running, clock: Clock) -> None:
 
 
 def test_health_and_readiness(service: Running) -> None:
+    # Liveness and readiness probes: common practice.
+    # OpenAPI from the schemas: DESIGN.md (Interfaces).
     assert service.get("/healthz").json() == {"status": "alive"}
     assert service.get("/readyz").json()["status"] == "ready"
     schema = service.get("/openapi.json").json()
@@ -172,7 +183,9 @@ def test_history_stays_short(make_app: MakeApp) -> None:
     with running(make_app(history_points=8)) as service:
         body = {"stream": "h", "features": 1, "learners": [{"name": "p", "kind": "perceptron"}]}
         service.post("/v1/streams", json=body)
-        # The same item labelled 1, 0, 1, ... updates the perceptron every time.
+        # The same item labelled 1, 0, 1, ... updates the perceptron every time. Worked by hand:
+        # from w = 0 a label 1 gives w = x, then label 0 sees w . x = |x|^2 > 0, wrong, w = 0 again.
+        # A short history for plots: DESIGN.md (Words, ledger).
         items = [{"features": ["a"], "label": i % 2} for i in range(1, 41)]
         service.post("/v1/streams/h/examples", json={"items": items})
         row = learner(service.get("/v1/streams/h/ledger").json(), "p")

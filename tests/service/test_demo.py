@@ -48,15 +48,17 @@ def test_demo_once_prints_the_ledgers_writes_charts_and_raises_alerts(tmp_path: 
             assert learner["name"] in text
         for fmt in ("png", "svg"):
             assert (out / f"{stream}.{fmt}").stat().st_size > 5_000
+        # PNG specification: the 8-byte file signature.
         assert (out / f"{stream}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert f"http://127.0.0.1:{port}/" in text
     # The scenario's story: alerts are raised, and only once the planted rule has changed.
+    # THEORY.md: a ceiling holds while the stream satisfies its assumption (demo_data/streams.json).
     alerts = re.findall(r"alert: (\S+) (exceeded|contradicted) after (\d+) labels", text)
     assert alerts, text[-3000:]
     changes = dict(re.findall(r"(\S+): rule change after (\d+) labels", text))
     assert set(changes) == {e["stream"] for e in catalogue["streams"]}
     assert all(int(labels) >= min(map(int, changes.values())) for _, _, labels in alerts)
-    # --once stopped the service: the port is free again.
+    # --once stopped the service: the port is free again (bind succeeds: common practice).
     with socket.socket() as probe:
         probe.bind(("127.0.0.1", port))
 
@@ -67,6 +69,7 @@ def test_the_scenario_is_found_from_the_checkout_and_marks_the_change() -> None:
     records = load_records(ROOT / "demo_data" / entry["file"])
     [(labels, caption)] = change_mark(records, entry["planted"]["change_at"])
     assert caption == "rule change"
+    # Worked from the scenario's own timeline (demo_data/streams.json, planted change_at).
     # Every label released before that point belongs to an item dropped off before the change.
     change = datetime.fromisoformat(entry["planted"]["change_at"]).timestamp()
     released = sorted((r.label_at, r.at) for r in records if r.label_at is not None)
@@ -77,6 +80,7 @@ def test_the_scenario_is_found_from_the_checkout_and_marks_the_change() -> None:
 def test_a_missing_scenario_says_what_to_do(tmp_path: Path) -> None:
     from click import ClickException
 
+    # An error that says what to do next: common practice.
     with pytest.raises(ClickException, match="demo_data.generate"):
         read_catalogue(tmp_path)
 
@@ -93,6 +97,7 @@ def test_a_busy_port_is_refused_before_anything_starts(tmp_path: Path) -> None:
         result = CliRunner().invoke(
             demo_command, ["--once", "--port", str(port), "--data-dir", str(tmp_path / "d")]
         )
+    # Refusing before any state is written: common practice.
     assert result.exit_code == 1
     assert f"Port {port}" in result.output and "--port 0" in result.output
     assert not (tmp_path / "d").exists()

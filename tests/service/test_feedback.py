@@ -23,6 +23,7 @@ def ledger(service: Running) -> dict[str, Any]:
     return dict(service.get(f"{URL}/ledger").json())
 
 
+# DESIGN.md (Feedback rules): idempotent; the same id and label again changes nothing.
 def test_same_label_twice_is_a_duplicate_and_counts_once(service: Running) -> None:
     setup(service)
     service.post(f"{URL}/predict", json={"id": "p1", "features": ["a", "b"]})
@@ -44,6 +45,7 @@ def test_a_different_label_is_a_conflict_and_changes_nothing(service: Running) -
     service.post(f"{URL}/feedback", json={"id": "p1", "label": 1})
     before = ledger(service)
     response = service.post(f"{URL}/feedback", json={"id": "p1", "label": 0})
+    # DESIGN.md (Feedback rules); RFC 9110 §15.5.10: 409 Conflict.
     assert response.status_code == 409
     error = response.json()["error"]
     assert (error["field"], error["value"]) == ("label", 0)
@@ -53,7 +55,7 @@ def test_a_different_label_is_a_conflict_and_changes_nothing(service: Running) -
 def test_unknown_id_is_404(service: Running) -> None:
     setup(service)
     response = service.post(f"{URL}/feedback", json={"id": "never", "label": 1})
-    assert response.status_code == 404
+    assert response.status_code == 404  # RFC 9110 §15.5.5: 404 Not Found
     assert response.json()["error"]["field"] == "id"
     assert response.json()["error"]["value"] == "never"
 
@@ -68,11 +70,13 @@ def test_a_label_after_the_wait_is_410_and_the_expiry_is_counted(
     service.post(f"{URL}/predict", json={"id": "young", "features": ["c"]})
     clock.advance(30)  # "late" and "kept" waited exactly 60 s: expired; "young" 30 s
     view = ledger(service)
+    # DESIGN.md (Feedback rules): expiry is counted, never silent.
     assert (view["pending"], view["expired"]) == (1, 2)
     response = service.post(f"{URL}/feedback", json={"id": "late", "label": 1})
-    assert response.status_code == 410
+    assert response.status_code == 410  # RFC 9110 §15.5.11: 410 Gone
     assert response.json()["error"]["value"] == "late"
     assert service.post(f"{URL}/feedback", json={"id": "young", "label": 0}).status_code == 200
+    # DESIGN.md (Feedback rules): a label may come back as a labelled example.
     # The expired prediction can still teach, as a labelled example with its features.
     example = service.post(f"{URL}/examples", json={"features": ["a"], "label": 1})
     assert example.status_code == 200
@@ -87,6 +91,7 @@ def test_the_sweeper_expires_without_requests(service: Running, clock: Clock) ->
     clock.advance(11)
     service.registry.sweep()
     stream = service.registry.get("gate")
+    # DESIGN.md (Feedback rules): predictions wait up to a set time; expiry is counted.
     assert (len(stream.pending), stream.counts["expired"]) == (0, 1)
 
 
@@ -119,6 +124,7 @@ def test_batch_feedback_reports_each_item_in_order(service: Running, clock: Cloc
         },
     )
     assert response.status_code == 200
+    # DESIGN.md (Feedback rules), applied in order: applied, duplicate, conflict, unknown, expired.
     statuses = [r["status"] for r in response.json()["items"]]
     assert statuses == ["applied", "duplicate", "conflict", "unknown", "expired"]
 
@@ -126,12 +132,13 @@ def test_batch_feedback_reports_each_item_in_order(service: Running, clock: Cloc
 def test_predict_with_a_known_id_returns_the_stored_answer(service: Running) -> None:
     setup(service)
     first = service.post(f"{URL}/predict", json={"id": "p", "features": {"a": 1, "b": 1}}).json()
-    # The same item in the other form is the same item.
+    # Idempotent retries with a client id: common practice. DESIGN.md (Features): a list of
+    # flags and a mapping with value 1 are the same item.
     again = service.post(f"{URL}/predict", json={"id": "p", "features": ["b", "a"]}).json()
     assert again == {**first, "duplicate": True}
     assert ledger(service)["pending"] == 1
     other = service.post(f"{URL}/predict", json={"id": "p", "features": ["c"]})
-    assert other.status_code == 409
+    assert other.status_code == 409  # RFC 9110 §15.5.10: 409 Conflict (id reused)
     assert other.json()["error"]["field"] == "id"
     # After its label, a retry still gets the stored answer, and nothing is counted twice.
     service.post(f"{URL}/feedback", json={"id": "p", "label": 1})
@@ -146,7 +153,7 @@ def test_ids_without_a_client_id_are_generated_and_unique(service: Running) -> N
     setup(service)
     items = [{"features": ["a"]} for _ in range(5)]
     answers = service.post(f"{URL}/predict", json={"items": items}).json()["items"]
-    ids = {a["id"] for a in answers}
+    ids = {a["id"] for a in answers}  # unique server-made ids: common practice
     assert len(ids) == 5
     assert ledger(service)["pending"] == 5
 
@@ -155,5 +162,5 @@ def test_an_example_may_not_reuse_a_waiting_prediction_id(service: Running) -> N
     setup(service)
     service.post(f"{URL}/predict", json={"id": "p", "features": ["a"]})
     response = service.post(f"{URL}/examples", json={"id": "p", "features": ["a"], "label": 1})
-    assert response.status_code == 409
+    assert response.status_code == 409  # RFC 9110 §15.5.10: 409 Conflict
     assert ledger(service)["learners"][0]["examples"] == 0

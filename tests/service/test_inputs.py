@@ -44,6 +44,7 @@ def raw(service: Running, url: str, text: str) -> Any:
     return service.post(url, content=text, headers={"content-type": "application/json"})
 
 
+# DESIGN.md (Interfaces): one error shape naming the field, the rule and the value.
 def check(response: Any, status: int, field: str, rule_part: str, value: Any = ...) -> None:
     assert response.status_code == status, response.text
     error = response.json()["error"]
@@ -56,6 +57,9 @@ def check(response: Any, status: int, field: str, rule_part: str, value: Any = .
 
 
 # (url, body as JSON text, status, field, part of the rule, value)
+# 422: RFC 9110 §15.5.21 (well-formed but not acceptable content; also FastAPI's choice for a
+# failed validation); 404: RFC 9110 §15.5.5 (no such stream). Feature spaces: DESIGN.md
+# (Features); labels are 0 or 1, JSON true/false read as 1/0: common practice.
 CASES = [
     # wrong types
     (f"{CLOSED}/predict", '{"features": {"a": "1"}}', 422, "features.a", "finite number", "1"),
@@ -69,6 +73,8 @@ CASES = [
     (f"{CLOSED}/predict", '{"features": ["a"], "extra": 1}', 422, "extra", "known field", 1),
     (f"{CLOSED}/predict", '{"features": ', 422, "body", "valid JSON", None),
     # non-finite numbers, which Python's json module would accept
+    # RFC 8259 (JSON): NaN and Infinity are not JSON numbers; the Python json docs (Infinite and
+    # NaN number values) say the module accepts them anyway.
     (f"{CLOSED}/predict", '{"features": {"a": NaN}}', 422, "features.a", "finite number", "NaN"),
     (f"{CLOSED}/predict", '{"features": {"b": Infinity}}', 422, "features.b", "finite", "Infinity"),
     (f"{CLOSED}/predict", '{"items": [{"features": ["a"]}, {"features": {"c": -Infinity}}]}',
@@ -110,9 +116,10 @@ def test_bad_request_is_named_and_changes_nothing(
     setup(service)
     before = state(service)
     check(raw(service, url, text), status, field, rule, value)
-    assert state(service) == before
+    assert state(service) == before  # the client's rule: bad input changes no state
 
 
+# 422 (RFC 9110 §15.5.21) for a bad stream declaration; webhook allow list: DESIGN.md (Security).
 STREAM_CASES = [
     ({"stream": "Bad Name"}, "stream", "matches", "Bad Name"),
     ({"features": 0}, "features", "positive integer", 0),
@@ -149,6 +156,8 @@ def test_bad_stream_is_named_and_not_created(
     assert service.get("/v1/streams").json()["streams"] == []
 
 
+# DESIGN.md (Security): size limits with clear 4xx errors. 413 Content Too Large: RFC 9110
+# §15.5.14; 409 Conflict for a full registry (state of the server): RFC 9110 §15.5.10.
 def test_limits_are_4xx_and_change_nothing(make_app: MakeApp) -> None:
     app = make_app(
         max_batch_items=3, max_features_per_item=2, max_body_bytes=400, max_streams=2,
@@ -179,6 +188,7 @@ def test_limits_are_4xx_and_change_nothing(make_app: MakeApp) -> None:
         assert state(service) == before
 
 
+# RFC 9110 §15.5.14: 413 also for a chunked body with no Content-Length (limit on bytes read).
 def test_body_limit_holds_without_a_content_length(make_app: MakeApp) -> None:
     with running(make_app(max_body_bytes=200)) as service:
         setup(service)
@@ -195,6 +205,7 @@ def test_body_limit_holds_without_a_content_length(make_app: MakeApp) -> None:
 
 def test_a_bad_batch_admits_no_feature_name(service: Running) -> None:
     """All or nothing: item 0 would admit 'p' to the open space, item 1 overfills it."""
+    # Worked by hand: size 3 with "x" known leaves 2 places; {q, r, s} needs 3.
     setup(service)
     before = state(service)
     batch = {"items": [{"id": "n1", "features": ["p"]}, {"id": "n2", "features": ["q", "r", "s"]}]}
@@ -213,6 +224,7 @@ def test_a_bad_batch_admits_no_feature_name(service: Running) -> None:
 def test_a_bad_feedback_batch_applies_nothing(service: Running) -> None:
     setup(service)
     before = state(service)
+    # All-or-nothing batches: common practice; the client's rule: bad input changes no state.
     batch = {"items": [{"id": "known", "label": 1}, {"id": 5, "label": 1}]}
     check(service.post(f"{CLOSED}/feedback", json=batch), 422, "items[1].id", "printable", 5)
     assert state(service) == before
@@ -221,6 +233,7 @@ def test_a_bad_feedback_batch_applies_nothing(service: Running) -> None:
 def test_a_reused_id_in_a_batch_rejects_the_whole_batch(service: Running) -> None:
     setup(service)
     before = state(service)
+    # RFC 9110 §15.5.10: 409 Conflict for an id already in use.
     batch = {"items": [{"id": "new", "features": ["a"]}, {"id": "known", "features": ["b"]}]}
     check(service.post(f"{CLOSED}/predict", json=batch), 409, "items[1].id", "one item", "known")
     twice = {"items": [{"id": "n", "features": ["a"]}, {"id": "n", "features": ["b"]}]}
@@ -228,6 +241,7 @@ def test_a_reused_id_in_a_batch_rejects_the_whole_batch(service: Running) -> Non
     assert state(service) == before
 
 
+# RFC 9110 §15.5.5: 404 Not Found; §15.5.6: 405 Method Not Allowed.
 def test_unknown_routes_and_methods_use_the_error_shape(service: Running) -> None:
     response = service.get("/v1/nothing-here")
     assert response.status_code == 404
@@ -239,6 +253,7 @@ def test_unknown_routes_and_methods_use_the_error_shape(service: Running) -> Non
 
 def test_a_learner_refusing_an_item_rejects_the_whole_batch(service: Running) -> None:
     """Winnow reads values in [0, 1] only: the space accepts 2, the panel does not."""
+    # THEORY.md (Multiplicative weights): Winnow's target is a disjunction of boolean variables.
     panel = [{"name": "e", "kind": "elimination"}, {"name": "w", "kind": "winnow"}]
     body = {"stream": "mixed", "features": 5, "learners": panel}
     assert service.post("/v1/streams", json=body).status_code == 201

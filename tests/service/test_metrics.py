@@ -10,6 +10,8 @@ from tests.service.conftest import MakeApp
 from tests.service.harness import Clock, Running, running
 from tests.service.test_durability import create, drive
 
+# DESIGN.md (Metrics); Prometheus naming (metric and label naming documentation): a common
+# prefix, snake_case, `_total` on counters, base units (`_seconds`).
 CONTRACT = {
     "mistake_ledger_predictions": "counter",
     "mistake_ledger_feedback": "counter",
@@ -30,6 +32,7 @@ CONTRACT = {
 
 def scrape(service: Running) -> dict[str, dict[tuple[tuple[str, str], ...], float]]:
     """{sample name: {sorted labels: value}} from the text format."""
+    # Reference parser: prometheus_client.parser (Prometheus exposition format, text-based).
     text = service.get("/metrics").text
     out: dict[str, dict[tuple[tuple[str, str], ...], float]] = {}
     for family in text_string_to_metric_families(text):
@@ -86,6 +89,7 @@ def test_metrics_match_the_ledger(service: Running, clock: Clock) -> None:
             assert value(samples, "mistake_ledger_alerts_total", **who, state=state) == raised
             alerts_seen += raised
     assert alerts_seen > 0  # the noisy stream contradicts the conjunction learners
+    # Prometheus exposition format (histograms): the le="+Inf" bucket equals _count.
     count = value(samples, "mistake_ledger_label_delay_seconds_count", **s)
     assert count == stream.counts["labels"]
     assert value(samples, "mistake_ledger_label_delay_seconds_bucket", **s, le="+Inf") == count
@@ -101,12 +105,15 @@ def test_label_delay_buckets(service: Running, clock: Clock) -> None:
     samples = scrape(service)
     s = {"stream": "north"}
     bucket = "mistake_ledger_label_delay_seconds_bucket"
+    # Worked by hand, cumulative buckets (Prometheus exposition format): delays 0, 5, 5, 30 give
+    # le=1: 1, le=10: 3, le=60: 4; sum 0 + 5 + 5 + 30 = 40.
     assert value(samples, bucket, **s, le="1.0") == 1
     assert value(samples, bucket, **s, le="10.0") == 3
     assert value(samples, bucket, **s, le="60.0") == 4
     assert value(samples, "mistake_ledger_label_delay_seconds_sum", **s) == 40
 
 
+# DESIGN.md (Metrics): allow turning the stream label off; series then sum over streams.
 def test_the_stream_label_can_be_turned_off(make_app: MakeApp, clock: Clock) -> None:
     with running(make_app(metrics_stream_label=False)) as service:
         create(service, "north")
@@ -129,6 +136,7 @@ def test_the_stream_label_can_be_turned_off(make_app: MakeApp, clock: Clock) -> 
             assert sum(s or 0 for s in states) == 2  # one learner of that name per stream
 
 
+# Removing a deleted object's series (bounded cardinality): common practice.
 def test_a_deleted_stream_leaves_the_metrics(service: Running) -> None:
     create(service, "north")
     assert value(scrape(service), "mistake_ledger_pending_predictions", stream="north") == 0

@@ -84,6 +84,7 @@ def subset(stream: str, count: int, out: Path) -> Path:
 
 def local_run(panel: dict[str, Any], records: list[Record], releases: list[float | None]):
     """The panel's learners on the same timeline, locally: updates and served mistakes."""
+    # Reference: the learners package run in-process; served mistakes as in DESIGN.md (Accounting).
     space = learners.FeatureSpace(panel["features"])
     seats = {}
     for spec in panel["learners"]:
@@ -113,7 +114,7 @@ def test_replay_matches_the_same_learners_run_locally(service_url: str, tmp_path
         player = Replay(client, panel["stream"], records, releases, polls=50)
         advanced: list[int] = []
         result = player.run(advanced.append)
-    assert sum(advanced) == player.events == 600
+    assert sum(advanced) == player.events == 600  # worked by hand: 300 predicts + 300 labels
     assert result.predictions == 300 and result.statuses == {"applied": 300}
     expected = local_run(panel, records, releases)
     got = {
@@ -128,7 +129,7 @@ def test_replay_matches_the_same_learners_run_locally(service_url: str, tmp_path
         assert points[0].labels == 0 and points[-1].labels == 300
         assert points[-1].counted == got[name][0] or result.chart.counts[name] == "mistakes"
         assert [p.labels for p in points] == sorted(p.labels for p in points)
-    # The table names every learner and the serving one is marked.
+    # The table names every learner and the serving one is marked (rich renders it).
     console = Console(width=200, record=True)
     console.print(ledger_table(result.ledger, result.compare))
     text = console.export_text()
@@ -177,8 +178,9 @@ def test_replay_command_with_csv_writes_table_and_charts(service_url: str, tmp_p
     assert result.exit_code == 0, result.output
     for learner in entry["panel"]["learners"]:
         assert learner["name"] in result.output
-    assert "250 applied" in result.output
+    assert "250 applied" in result.output  # CSV reading per RFC 4180: common practice
     png = (charts / "lockers-reweigh.png").read_bytes()
+    # PNG specification: the 8-byte file signature; SVG: the <svg> root element.
     assert png.startswith(b"\x89PNG\r\n\x1a\n") and len(png) > 10_000
     svg = (charts / "lockers-reweigh.svg").read_text(encoding="utf-8")
     assert "<svg" in svg and "perceptron" in svg
@@ -200,7 +202,7 @@ def test_ledger_command_prints_the_table(service_url: str) -> None:
     missing = CliRunner(env={"COLUMNS": "200"}).invoke(
         ledger_command, ["no-such-stream", "--url", service_url]
     )
-    assert missing.exit_code == 1 and "404" in missing.output
+    assert missing.exit_code == 1 and "404" in missing.output  # RFC 9110 §15.5.5: 404
 
 
 def test_the_services_errors_reach_the_caller_with_field_rule_and_value(service_url: str) -> None:
@@ -214,7 +216,7 @@ def test_the_services_errors_reach_the_caller_with_field_rule_and_value(service_
     with LedgerClient(service_url, retries=3) as client:
         with pytest.raises(RequestRejected) as caught:
             client.create_stream(bad)
-        assert caught.value.status == 422
+        assert caught.value.status == 422  # RFC 9110 §15.5.21: 422 Unprocessable Content
         assert caught.value.field is not None and "variant" in caught.value.field
         assert caught.value.value == "winnow9" and caught.value.rule
         assert client.has_stream("bad-panel") is False  # nothing was created
@@ -231,6 +233,9 @@ def test_exact_order_predicts_before_a_label_released_at_the_same_moment() -> No
     records = [record(0, 0, 50), record(1, 10, 10), record(2, 20, 30), record(3, 40, None, None)]
     steps = plan(records, [r.label_at for r in records], window=0)
     order = [(s.kind, s.indices) for s in steps]
+    # Worked by hand: events sorted by time, a predict before a label at the same moment:
+    # predicts at 0 and 10 (one batch), label 1 at 10, predict 20, label 2 at 30, predict 40,
+    # label 0 at 50; record 3 has no label.
     assert order == [
         ("predict", [0, 1]),
         ("label", [1]),
@@ -244,6 +249,7 @@ def test_exact_order_predicts_before_a_label_released_at_the_same_moment() -> No
 def test_windows_send_predictions_first_and_never_a_label_before_its_item() -> None:
     records = [record(i, at=i * 100.0, label_at=i * 100.0 + 150) for i in range(10)]
     steps = plan(records, [r.label_at for r in records], window=1000, max_batch=4)
+    # Worked by hand: 10 predictions in batches of at most 4 (4, 4, 2), then 10 labels likewise.
     assert [(s.kind, len(s.indices)) for s in steps] == [
         ("predict", 4), ("predict", 4), ("predict", 2), ("label", 4), ("label", 4), ("label", 2),
     ]  # fmt: skip
@@ -260,6 +266,7 @@ def test_windows_send_predictions_first_and_never_a_label_before_its_item() -> N
 
 def test_delays() -> None:
     records = [record(i, at=1000.0 * i, label_at=None) for i in range(200)]
+    # Worked by hand from the definitions: fixed adds d; uniform stays in [low, high], seeded.
     fixed = Delay.parse("fixed:3600").releases(records)
     assert fixed == [1000.0 * i + 3600 for i in range(200)]
     first = Delay.parse("uniform:600,86400").releases(records, seed=7)
@@ -273,6 +280,8 @@ def test_delays() -> None:
         assert caught.value.field == "delay" and caught.value.value == bad
 
 
+# ISO 8601 timestamps (Python datetime.fromisoformat as reference); RFC 8259 (JSON) lines.
+# The client's rule: an error names the field, the rule and the value.
 @pytest.mark.parametrize(
     ("line", "field", "rule"),
     [
@@ -309,10 +318,12 @@ def test_csv_reading_and_its_errors(tmp_path: Path) -> None:
     )
     a, b = load_records(path)
     assert a.features == {"weight": 0.5, "flag": 1.0} and a.label == 1
+    # Worked by hand: 10:00Z to 12:00Z is 7200 s; 1772445600 is 2026-03-02T10:00:00Z.
     assert a.label_at is not None and a.label_at - a.at == 7200
     assert b.features == {} and b.label is None and b.label_at is None
     path.write_text("id,at,verdict_at,label,w\na,10,2026-01-01T00:00:10+01:00,1,2\n", "utf-8")
     [c] = load_records(path, label_column="verdict_at")
+    # Reference: Python's datetime with a +01:00 offset (ISO 8601 offsets).
     one_hour_east = timezone(timedelta(hours=1))
     assert c.features == {"w": 2.0}
     assert c.label_at == datetime(2026, 1, 1, 0, 0, 10, tzinfo=one_hour_east).timestamp()

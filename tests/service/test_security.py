@@ -40,6 +40,8 @@ def secured(make_app: MakeApp) -> Running:
         yield admin
 
 
+# RFC 9110 §15.5.2: 401 Unauthorized; RFC 6750 §3: WWW-Authenticate: Bearer on a 401.
+# Health probes open to all: common practice. DESIGN.md (Security): tokens.
 def test_without_a_token_everything_but_health_is_401(secured: Running) -> None:
     anonymous = secured.with_token(None)
     for method, url, body in [
@@ -61,6 +63,8 @@ def test_without_a_token_everything_but_health_is_401(secured: Running) -> None:
     assert status(wrong, "GET", "/v1/streams/north/ledger") == 401
 
 
+# DESIGN.md (Security): stream-scoped tokens for predict and feedback, admin for management.
+# RFC 9110 §15.5.4: 403 Forbidden; RFC 6750 §3.1: insufficient scope is a 403.
 def test_a_stream_token_uses_only_its_streams(secured: Running) -> None:
     north = secured.with_token(NORTH)
     assert status(north, "POST", "/v1/streams/north/predict", {"features": ["a"]}) == 200
@@ -91,6 +95,7 @@ def test_a_stream_token_uses_only_its_streams(secured: Running) -> None:
     assert secured.get("/v1/streams/south/ledger").json()["learners"][0]["examples"] == 0
 
 
+# A read-only scrape token: common practice; RFC 9110 §15.5.4: 403 Forbidden outside its scope.
 def test_the_metrics_token_reads_metrics_only(secured: Running) -> None:
     reader = secured.with_token(METRICS)
     assert reader.get("/metrics").status_code == 200
@@ -98,12 +103,14 @@ def test_the_metrics_token_reads_metrics_only(secured: Running) -> None:
     assert status(reader, "POST", "/v1/streams/north/predict", {"features": ["a"]}) == 403
 
 
+# DESIGN.md (Security): an admin token for stream management.
 def test_the_admin_token_manages_streams(secured: Running) -> None:
     assert secured.get("/metrics").status_code == 200
     assert len(secured.get("/v1/streams").json()["streams"]) == 3
     assert status(secured, "DELETE", "/v1/streams/south") == 200
 
 
+# A minimum token length: common practice.
 def test_short_tokens_are_refused() -> None:
     with pytest.raises(ValidationError):
         Settings.from_env({"MISTAKE_LEDGER_ADMIN_TOKEN": "short"})
@@ -111,6 +118,7 @@ def test_short_tokens_are_refused() -> None:
         Settings.from_env({"MISTAKE_LEDGER_STREAM_TOKENS": '{"short": ["a"]}'})
 
 
+# DESIGN.md (Security): no token configured means loopback only (common practice).
 def test_serve_refuses_a_public_address_without_tokens(monkeypatch: pytest.MonkeyPatch) -> None:
     for key in list(os.environ):
         if key.startswith("MISTAKE_LEDGER_"):
@@ -121,6 +129,8 @@ def test_serve_refuses_a_public_address_without_tokens(monkeypatch: pytest.Monke
     assert "MISTAKE_LEDGER_ADMIN_TOKEN" in result.output
 
 
+# 127.0.0.0/8 is loopback (RFC 1122 §3.2.1.3), ::1 too (RFC 4291 §2.5.3), "localhost" names it
+# (RFC 6761 §6.3): from memory; 0.0.0.0 and :: mean every interface: common practice.
 def test_loopback_addresses() -> None:
     for host in ("127.0.0.1", "127.1.2.3", "::1", "[::1]", "localhost"):
         assert is_loopback(host), host

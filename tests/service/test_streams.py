@@ -32,6 +32,7 @@ def defined_digest(features: Any) -> str:
         pairs = sorted((str(k), float(v)) for k, v in features.items() if v != 0)
     else:
         pairs = sorted((str(k), 1.0) for k in features)
+    # Reference: Python's standard library (hashlib.blake2b, json.dumps).
     return hashlib.blake2b(json.dumps(pairs).encode(), digest_size=12).hexdigest()
 
 
@@ -55,6 +56,7 @@ def test_the_digest_is_the_defined_one_for_unusual_items() -> None:
     ]
     for item in items:
         assert fingerprint(item) == defined_digest(item), item
+    # DESIGN.md (Features): a flag is 1, absent means 0.
     assert fingerprint(["b", "a"]) == fingerprint({"a": 1, "b": 1.0, "c": 0})
 
 
@@ -78,6 +80,7 @@ def two_learner_stream(names: tuple[str, str]) -> Stream:
 def test_answers_and_outcomes_say_what_the_contract_says() -> None:
     """Votes name each learner's vote; feedback ``wrong`` = its vote differed from the label
     (the HTTP contract); two learners make vote keys and outcome keys of the same length."""
+    # DESIGN.md (Accounting): every learner predicts every item; served mistakes.
     rng = random.Random(3)
     stream = two_learner_stream(("e", "p"))
     other = two_learner_stream(("x", "y"))
@@ -98,6 +101,7 @@ def test_answers_and_outcomes_say_what_the_contract_says() -> None:
     assert updated == stream.seats[1].learner.updates
     # Another stream's views carry its own names.
     assert set(other.apply_predict(1.0, items[:3])[0]["votes"]) == {"x", "y"}
+    # Idempotent retries: common practice.
     # A repeated predict answers from the stored votes, marked as a duplicate.
     again = stream.apply_predict(3.0, items[:5])
     assert [a["votes"] for a in again] == [a["votes"] for a in answers[:5]]
