@@ -38,7 +38,8 @@ Cost
     ``x & reads == must``, so a vote is two vector operations over the survivors. Otherwise each
     rule is a row of its literals (slot, sign) and a vote reads those. Survivors are compacted
     after each label, so the cost falls as the class is pruned. Building the class parses every
-    literal once.
+    literal once. Which survivors hold on the last item is kept until the survivors change, so
+    learning the item just predicted does not evaluate the rules again.
 
 References
     D. Angluin, "Queries and concept learning", Machine Learning 2(4), 1988.
@@ -195,44 +196,64 @@ class Halving(Learner):
             self._all_a, self._all_b = slots, signs
 
     def _select(self, alive: np.ndarray) -> None:
-        self._a, self._b = self._all_a[alive], self._all_b[alive]
+        self._keep(self._all_a[alive], self._all_b[alive])
+
+    def _keep(self, a: np.ndarray, b: np.ndarray) -> None:
+        """Set the survivors' layout; forget the last item's truth values (they were of others)."""
+        self._a, self._b = a, b
+        # One-word masks also as vectors (views of the single column), read by a vote directly.
+        one_word = self._masks and a.shape[1] == 1
+        self._must1: np.ndarray | None = a[:, 0] if one_word else None
+        self._read1: np.ndarray | None = b[:, 0] if one_word else None
+        self._cache: tuple[Encoded, np.ndarray, int] | None = None
 
     def params(self) -> dict[str, Any]:
         return {"rules": [r if isinstance(r, str) else list(r) for r in self.rules]}
 
     # -- predicting and learning ------------------------------------------------------------
 
-    def _truth(self, enc: Encoded) -> np.ndarray:
-        """Which surviving rules are true on the item."""
+    def _truth(self, enc: Encoded) -> tuple[np.ndarray, int]:
+        """Which surviving rules are true on the item, and how many.
+
+        Kept for the last item until the survivors change, so learning the item just predicted
+        evaluates the rules once (the cache holds the item itself, not an id that may recur).
+        """
+        cached = self._cache
+        if cached is not None and cached[0] is enc:
+            return cached[1], cached[2]
         slots = self._map.slots(enc.idx)
         m = self._m
+        truth: np.ndarray
         if self._masks:
             bits = 1 << m  # the phantom flag, always on
             for slot in slots.tolist():
                 bits |= 1 << slot
-            must, read = self._a, self._b
-            words = must.shape[1]
-            if words == 1:
-                return (read[:, 0] & np.uint64(bits)) == must[:, 0]
-            xs = np.array([(bits >> (64 * w)) & _WORD for w in range(words)], dtype=np.uint64)
-            return ((read & xs) == must).all(axis=1)
-        flags = np.zeros(m + 1, dtype=bool)
-        flags[m] = True
-        flags[slots] = True
-        return (flags[self._a] == self._b).all(axis=1)
+            if self._read1 is not None and self._must1 is not None:
+                truth = (self._read1 & np.uint64(bits)) == self._must1
+            else:
+                words = self._a.shape[1]
+                xs = np.array([(bits >> (64 * w)) & _WORD for w in range(words)], dtype=np.uint64)
+                truth = ((self._b & xs) == self._a).all(axis=1)
+        else:
+            flags = np.zeros(m + 1, dtype=bool)
+            flags[m] = True
+            flags[slots] = True
+            truth = (flags[self._a] == self._b).all(axis=1)
+        true = int(np.count_nonzero(truth))
+        self._cache = (enc, truth, true)
+        return truth, true
 
     def _predict(self, enc: Encoded) -> int:
-        return int(2 * int(np.count_nonzero(self._truth(enc))) > len(self._alive))
+        return int(2 * self._truth(enc)[1] > len(self._alive))
 
     def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
-        truth = self._truth(enc)
-        true = int(np.count_nonzero(truth))
+        truth, true = self._truth(enc)
         alive = len(self._alive)
         wrong = int(2 * true > alive) != y
         if true != (alive if y else 0):  # some survivor disagrees with the label
             agree = truth if y else ~truth
             self._alive = self._alive[agree]
-            self._a, self._b = self._a[agree], self._b[agree]
+            self._keep(self._a[agree], self._b[agree])
         if len(self._alive) == 0:
             self.contradicted = True
         return wrong, wrong

@@ -61,6 +61,7 @@ _RECOMPUTE_BELOW = 2.0**-8  # recompute the running sum when it falls this far b
 SPREAD_WINDOW = 2**16  # the widest numpy histogram a Spread keeps (256 KiB of int32)
 SPREAD_SCAN = 16384  # a Spread with up to this many live values counts by scanning them
 SPREAD_PENDING = 32  # moves a Spread holds back before it applies them to its histogram
+_sum = np.add.reduce  # what ndarray.sum calls, without its Python wrapper: the same sum
 _ONE = np.int32(1)  # the histogram's own type: ufunc.at is slow when it must cast
 
 
@@ -158,8 +159,11 @@ class ScaledWeights:
     def dot(self, idx: np.ndarray, val: np.ndarray | None, complement: bool = False) -> float:
         """``sum w_i x_i`` over the given slots (``val`` None: all values 1), or with ``complement``
         ``sum w_i (1 - x_i)`` over *all* slots, where a slot not in ``idx`` has ``x_i = 0``."""
-        part = self.rel[idx]
-        s = float(part.sum()) if val is None else float(part @ val)
+        return self.dot_part(self.rel[idx], val, complement)
+
+    def dot_part(self, part: np.ndarray, val: np.ndarray | None, complement: bool = False) -> float:
+        """:meth:`dot` from ``part = rel[idx]`` already gathered."""
+        s = float(_sum(part)) if val is None else float(part @ val)
         if complement:
             s = self.total - s
         return self.scale * s
@@ -176,17 +180,27 @@ class ScaledWeights:
         """One slot's weight."""
         return self.scale * (float(self.rel[i]) if i < len(self.rel) else self.base)
 
-    def mul(self, idx: np.ndarray, active: float | np.ndarray, rest: float) -> None:
+    def mul(
+        self,
+        idx: np.ndarray,
+        active: float | np.ndarray,
+        rest: float,
+        old: np.ndarray | None = None,
+    ) -> None:
         """Multiply the weights of the (distinct, stored) slots ``idx`` by ``active`` and the weight
-        of every other slot by ``rest``, in O(len(idx)) (O(support) when ``rest`` is 0)."""
+        of every other slot by ``rest``, in O(len(idx)) (O(support) when ``rest`` is 0).
+
+        ``old``, when given, must be ``rel[idx]`` as it is now (a caller that has just read it
+        passes it on, so it is not gathered twice)."""
         if rest == 0.0:
             self._keep_only(idx, active)
             return
         rel = self.rel
-        old = rel[idx]
+        if old is None:
+            old = rel[idx]
         new = old * active if rest == 1.0 else old * (active / rest)
         rel[idx] = new
-        self.total += float((new - old).sum())
+        self.total += float(_sum(new - old))
         if rest != 1.0:
             self.scale *= rest
             self._tidy()

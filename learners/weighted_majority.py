@@ -58,7 +58,9 @@ Cost
     beyond that a histogram of ``D`` kept lazily (amortised O(active flags) per label). Reading
     the ceiling (:meth:`ceiling_value`) is then O(1). With explicit ``rules``, ``m*`` is the
     vectorised minimum over the listed rules, O(rules) in numpy on the first read after a label.
-    :meth:`best_rules` costs O(rules, or flags seen) in numpy.
+    :meth:`best_rules` costs O(rules, or flags seen) in numpy. The last item's votes (and the
+    weights they read) are kept until the weights next change, so learning the item just
+    predicted does not read them again.
 
 References
     N. Littlestone and M. K. Warmuth, "The weighted majority algorithm", Information and
@@ -90,6 +92,7 @@ SOURCE = (
     "Computation 108(2)"
 )
 _NORMAL_EXPONENT = 64  # renormalise when the total weight leaves 2^-64 .. 2^64
+_sum = np.add.reduce  # what ndarray.sum calls, without its Python wrapper: the same sum
 
 
 class WeightedMajority(Learner):
@@ -142,6 +145,9 @@ class WeightedMajority(Learner):
         # of m* per number of labels seen.
         self._spread = Spread(self._d, live=True) if self._map is None else None
         self._best: tuple[int, int] = (-1, 0)
+        # The last item's slots, weights and votes (see _tally); None after any weight change.
+        self._cache: tuple[Encoded, tuple[np.ndarray, np.ndarray, np.ndarray, float, float]] | None
+        self._cache = None
         b = self.beta
         self._log_rules = math.log2(self.n_rules)
         self._log_inv_beta = math.log2(1.0 / b) if b > 0.0 else math.inf
@@ -186,36 +192,52 @@ class WeightedMajority(Learner):
     def _slots(self, enc: Encoded) -> np.ndarray:
         if self._map is not None:
             return self._map.slots(enc.idx)
-        seen = len(self.space)
-        self._pos.grow(seen)
-        self._neg.grow(seen)
+        seen = len(self.space.names)
+        if len(self._pos.rel) < seen or len(self._neg.rel) < seen:
+            # No slot count reaches ``count`` (n + 1 > names), so grow only stores new slots.
+            self._pos.grow(seen)
+            self._neg.grow(seen)
         return enc.idx
 
     def votes(self, item: Any) -> tuple[float, float]:
         """The total weight voting 1 and voting 0 on one item (a tie predicts 0)."""
-        return self._votes(self._slots(self.space.encode(item)))
-
-    def _votes(self, slots: np.ndarray) -> tuple[float, float]:
-        on_pos = self._pos.sum_at(slots)  # flag rules that vote 1 (their flag is on)
-        on_neg = self._neg.sum_at(slots)  # negated rules that vote 0
-        ones = on_pos + (self._neg.weight() - on_neg)
-        zeros = (self._pos.weight() - on_pos) + on_neg
+        _, _, _, ones, zeros = self._tally(self.space.encode(item))
         return ones, zeros
 
+    def _tally(self, enc: Encoded) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
+        """The item's slots, the relative weights there (rules on its flags) and the two votes.
+
+        Kept for the last item until the weights change, so learning the item just predicted
+        reads them once (the cache holds the item itself: identity, not an id that may recur).
+        """
+        cached = self._cache
+        if cached is not None and cached[0] is enc:
+            return cached[1]
+        slots = self._slots(enc)
+        pos, neg = self._pos, self._neg
+        at_pos = pos.rel[slots]  # flag rules that vote 1 (their flag is on)
+        at_neg = neg.rel[slots]  # negated rules that vote 0
+        on_pos = pos.scale * float(_sum(at_pos))
+        on_neg = neg.scale * float(_sum(at_neg))
+        ones = on_pos + (neg.scale * neg.total - on_neg)
+        zeros = (pos.scale * pos.total - on_pos) + on_neg
+        tally = (slots, at_pos, at_neg, ones, zeros)
+        self._cache = (enc, tally)
+        return tally
+
     def _predict(self, enc: Encoded) -> int:
-        ones, zeros = self._votes(self._slots(enc))
+        _, _, _, ones, zeros = self._tally(enc)
         return int(ones > zeros)
 
     def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
-        slots = self._slots(enc)
-        ones, zeros = self._votes(slots)
+        slots, at_pos, at_neg, ones, zeros = self._tally(enc)
         wrong = int(ones > zeros) != y
-        if self._map is None and len(self._d) < len(self.space):
-            self._d = ensure_length(self._d, len(self.space), 0)
-            self._on1 = ensure_length(self._on1, len(self.space), 0)
-            if self._spread is not None:
-                self._spread.values = self._d
         d = self._d
+        if self._map is None and len(d) < len(self.space.names):
+            d = self._d = ensure_length(d, len(self.space.names), 0)
+            self._on1 = ensure_length(self._on1, len(self.space.names), 0)
+            if self._spread is not None:
+                self._spread.values = d
         old = d[slots]
         if y:
             self.labels1 += 1
@@ -227,19 +249,21 @@ class WeightedMajority(Learner):
         if self._spread is not None and len(old):
             self._spread.move(old, -1 if y else 1)
         if wrong:
+            self._cache = None  # the weights change
             b = self.beta
+            pos, neg = self._pos, self._neg
             if y:  # erred: flag rules whose flag is off, negated rules whose flag is on
-                self._pos.mul(slots, 1.0, b)
-                self._neg.mul(slots, b, 1.0)
+                pos.mul(slots, 1.0, b, at_pos)
+                neg.mul(slots, b, 1.0, at_neg)
             else:
-                self._pos.mul(slots, b, 1.0)
-                self._neg.mul(slots, 1.0, b)
-            total = self._pos.weight() + self._neg.weight()
+                pos.mul(slots, b, 1.0, at_pos)
+                neg.mul(slots, 1.0, b, at_neg)
+            total = pos.scale * pos.total + neg.scale * neg.total
             if total > 0.0:
                 exponent = math.frexp(total)[1]
                 if abs(exponent) > _NORMAL_EXPONENT:
-                    self._pos.rescale(-exponent)
-                    self._neg.rescale(-exponent)
+                    pos.rescale(-exponent)
+                    neg.rescale(-exponent)
         if self.beta == 0.0 and not self.contradicted and self.best_mistakes() > 0:
             self.contradicted = True  # no rule agrees with every label: the version space is empty
         return wrong, wrong
@@ -344,6 +368,7 @@ class WeightedMajority(Learner):
 
     def _restore(self, learned: Mapping[str, Any]) -> None:
         length = len(self.space) if self._map is None else len(self._pos.rel)
+        self._cache = None
         try:
             self._pos.restore(learned["pos"], length, "learned.pos")
             self._neg.restore(learned["neg"], length, "learned.neg")

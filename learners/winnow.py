@@ -64,7 +64,9 @@ Mistake ceiling (counts updates, which are the mistakes: the rule is mistake-dri
 
 Cost
     Weights are stored only for flags the space has admitted, in numpy arrays grown on demand;
-    ``n`` enters only the ceiling and the default threshold. Predict and learn cost O(active flags).
+    ``n`` enters only the ceiling and the default threshold. Predict and learn cost O(active flags);
+    the last item's score (and the weights it read) is kept until the weights next change, so
+    learning the item just predicted does not compute it again.
     The conjunction form needs the weights of every flag that is off (all but a few of ``n``):
     one scale factor carries the weight of every flag never seen and a running total the sum of
     all ``n`` weights (:class:`learners.rules.ScaledWeights`), so it is O(active flags) as well.
@@ -137,6 +139,8 @@ class Winnow(Learner):
         self._w = ScaledWeights(n, 2.0 if balanced else 1.0)
         self._against = ScaledWeights(n, 1.0) if balanced else None  # w-, balanced only
         self.fractional = False  # an update came from an item with a value strictly in (0, 1)
+        # The last item's score and weights (see _tally); None after any weight change.
+        self._cache: tuple[Encoded, tuple[float, np.ndarray, np.ndarray | None]] | None = None
         # The ceiling is per_k * k + fixed; both are fixed by the parameters and n.
         self._per_k: float | None = None
         self._fixed = 0.0
@@ -177,31 +181,52 @@ class Winnow(Learner):
         return self._score(self.encode(item))
 
     def _score(self, enc: Encoded) -> float:
-        seen = len(self.space)
+        return self._tally(enc)[0]
+
+    def _tally(self, enc: Encoded) -> tuple[float, np.ndarray, np.ndarray | None]:
+        """The score and the stored weights at the item's flags (``w``, and ``w-`` if balanced).
+
+        Kept for the last item until the weights change, so learning the item just predicted
+        reads them once (the cache holds the item itself, not an id that may recur).
+        """
+        cached = self._cache
+        if cached is not None and cached[0] is enc:
+            return cached[1]
+        seen = len(self.space.names)
+        idx = enc.idx
         val = None if enc.binary else enc.val
-        self._w.grow(seen)
-        s = self._w.dot(enc.idx, val, self.complement)
-        if self._against is not None:
-            self._against.grow(seen)
-            s -= self._against.dot(enc.idx, val, self.complement)
-        return s
+        w = self._w
+        w.grow(seen)
+        part = w.rel[idx]
+        s = w.dot_part(part, val, self.complement)
+        against = self._against
+        part_against = None
+        if against is not None:
+            against.grow(seen)
+            part_against = against.rel[idx]
+            s -= against.dot_part(part_against, val, self.complement)
+        tally = (s, part, part_against)
+        self._cache = (enc, tally)
+        return tally
 
     def _predict(self, enc: Encoded) -> int:
-        fires = int(self._score(enc) > self.theta)
+        fires = int(self._tally(enc)[0] > self.theta)
         return 1 - fires if self.complement else fires
 
     def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
-        fires = int(self._score(enc) > self.theta)
+        score, part, part_against = self._tally(enc)
+        fires = int(score > self.theta)
         wanted = 1 - y if self.complement else y
         if fires == wanted:
             return False, False
+        self._cache = None  # the weights change
         promote = wanted == 1
         if self.variant == "winnow1" and not promote:
-            self._w.mul(enc.idx, *self._zeroing(enc))
+            self._w.mul(enc.idx, *self._zeroing(enc), part)
         else:
-            self._w.mul(enc.idx, *self._factors(enc, 1 if promote else -1))
+            self._w.mul(enc.idx, *self._factors(enc, 1 if promote else -1), part)
         if self._against is not None:
-            self._against.mul(enc.idx, *self._factors(enc, -1 if promote else 1))
+            self._against.mul(enc.idx, *self._factors(enc, -1 if promote else 1), part_against)
         if not enc.binary:
             self.fractional = True
         return True, True
@@ -306,6 +331,7 @@ class Winnow(Learner):
         }
 
     def _restore(self, learned: Mapping[str, Any]) -> None:
+        self._cache = None
         try:
             self._w.restore(learned["weights"], len(self.space), "learned.weights")
             if self._against is not None:

@@ -309,3 +309,32 @@ def test_bad_class_parameters_are_named(kwargs: dict[str, Any], field: str) -> N
     with pytest.raises(learners.ParameterError) as caught:
         conjunctions(**kwargs)
     assert caught.value.field == field
+
+
+@pytest.mark.parametrize("name", ["all-5", "literals-over-200"])
+def test_truth_kept_for_the_last_item_is_dropped_when_rules_are_pruned(name: str) -> None:
+    # The learner keeps which survivors hold on the last item so that learning the item it just
+    # predicted does not evaluate them again; any pruning must drop it. Every item comes twice in a
+    # row as one encoded object (predict, learn, predict, learn): the run must still match halving
+    # from its definition (Angluin 1988) on the doubled stream.
+    rules = CLASSES[name]
+    rng = np.random.default_rng(21)
+    names = [f"f{i}" for i in range(5)]
+    items = [[f for f in names if rng.random() < 0.5] for _ in range(60)]
+    labels = [int(rng.random() < 0.5) for _ in items]
+    learner = learners.make("halving", features=10**6, rules=rules)
+    preds = []
+    for item, label in zip(items, labels, strict=True):
+        enc = learner.space.encode(item)
+        for _ in range(2):
+            preds.append(learner.predict(enc))
+            learner.learn(enc, label)
+    doubled = [item for item in items for _ in range(2)]
+    ref_preds, ref_mistakes, ref_alive = reference(
+        rules, doubled, [y for y in labels for _ in range(2)]
+    )
+    assert preds == ref_preds
+    assert learner.mistakes == ref_mistakes
+    assert learner.ceiling().implied["surviving_rules"] == ref_alive
+    # The check has teeth: pruning turns the answer on the repeat at least once.
+    assert any(a != b for a, b in zip(preds[::2], preds[1::2], strict=True))

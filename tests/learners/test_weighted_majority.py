@@ -317,3 +317,34 @@ def test_rule_on_a_flag_outside_a_closed_space_is_named() -> None:
     with pytest.raises(learners.ParameterError, match="'zz'") as caught:
         learners.make("weighted-majority", features=["a", "b"], rules=["a", "!zz"])
     assert caught.value.field == "rules[1]"
+
+
+@pytest.mark.parametrize("mode", ["open", "rules"])
+def test_votes_kept_for_the_last_item_are_dropped_when_the_weights_change(mode: str) -> None:
+    # The learner keeps the last item's votes so that learning the item it just predicted does
+    # not count them again; any update must drop them. Every item comes twice in a row as one
+    # encoded object (predict, learn, predict, learn): the run must still match weighted
+    # majority written from its definition (Littlestone and Warmuth 1994) on the doubled stream.
+    names = [f"f{i}" for i in range(12)]
+    items, labels = noisy_stream(11, names, 600, noise=0.2)
+    if mode == "rules":
+        rules = ["f1", "!f2", "f2", "true", "f9", "!f0", "false"]
+        learner = learners.make("weighted-majority", features=40, rules=rules, beta=0.5)
+    else:
+        every = names + [f"u{i}" for i in range(40 - len(names))]
+        rules = ["true", "false"] + every + ["!" + f for f in every]
+        learner = learners.make("weighted-majority", features=40, beta=0.5)
+    preds = []
+    for item, label in zip(items, labels, strict=True):
+        enc = learner.space.encode(item)
+        for _ in range(2):
+            preds.append(learner.predict(enc))
+            learner.learn(enc, label)
+    doubled = [item for item in items for _ in range(2)]
+    ref_preds, ref_updates, _ = reference(
+        rules, doubled, [y for y in labels for _ in range(2)], 0.5
+    )
+    assert preds == ref_preds
+    assert learner.updates == ref_updates
+    # The check has teeth: an update often turns the answer on the repeat.
+    assert sum(a != b for a, b in zip(preds[::2], preds[1::2], strict=True)) > 5

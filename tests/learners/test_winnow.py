@@ -343,3 +343,34 @@ def test_bad_parameters_are_named(params: dict[str, Any], field: str) -> None:
     with pytest.raises(learners.ParameterError, match=repr(field)) as caught:
         Winnow(10, **params)
     assert caught.value.field == field
+
+
+@pytest.mark.parametrize("variant", VARIANTS)
+@pytest.mark.parametrize("target", TARGETS)
+def test_score_kept_for_the_last_item_is_dropped_when_the_weights_change(
+    variant: str, target: str
+) -> None:
+    # The learner keeps the last item's score so that learning the item it just predicted does not
+    # compute it again; any update must drop it. Every item comes twice in a row as one encoded
+    # object (predict, learn, predict, learn): the run must still match the dense rule from its
+    # definition (Littlestone 1988) on the doubled stream.
+    n, used = 50, 8
+    rng = np.random.default_rng([VARIANTS.index(variant), TARGETS.index(target), 7])
+    rows = np.zeros((400, n))
+    rows[:, :used] = rng.random((400, used)) < 0.4
+    labels = [int(rng.random() < 0.5) for _ in range(400)]
+    learner = learners.make("winnow", features=n, variant=variant, target=target)
+    preds = []
+    for x, y in zip(rows, labels, strict=True):
+        enc = learner.space.encode({f"f{i}": float(x[i]) for i in range(used) if x[i]})
+        for _ in range(2):
+            preds.append(learner.predict(enc))
+            learner.learn(enc, y)
+    doubled = np.repeat(rows, 2, axis=0)
+    ref_preds, ref_updates = dense_reference(
+        n, variant, target, doubled, [y for y in labels for _ in range(2)], 2.0
+    )
+    assert preds == ref_preds
+    assert learner.updates == ref_updates
+    # The check has teeth: an update turns the answer on the repeat at least once.
+    assert any(a != b for a, b in zip(preds[::2], preds[1::2], strict=True))
