@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 
 import learners
 from learners.halving import Halving, conjunctions
+from tests.learners.stream_helpers import predict_learn_twice
 
 # -- counts of the trade ----------------------------------------------------------------------
 
@@ -323,12 +324,7 @@ def test_truth_kept_for_the_last_item_is_dropped_when_rules_are_pruned(name: str
     items = [[f for f in names if rng.random() < 0.5] for _ in range(60)]
     labels = [int(rng.random() < 0.5) for _ in items]
     learner = learners.make("halving", features=10**6, rules=rules)
-    preds = []
-    for item, label in zip(items, labels, strict=True):
-        enc = learner.space.encode(item)
-        for _ in range(2):
-            preds.append(learner.predict(enc))
-            learner.learn(enc, label)
+    preds = predict_learn_twice(learner, items, labels)
     doubled = [item for item in items for _ in range(2)]
     ref_preds, ref_mistakes, ref_alive = reference(
         rules, doubled, [y for y in labels for _ in range(2)]

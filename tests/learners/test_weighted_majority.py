@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 
 import learners
 import learners.rules
+from tests.learners.stream_helpers import predict_learn_twice
 
 
 def littlestone_warmuth(n_rules: int, best: int, beta: float) -> float:
@@ -334,12 +335,7 @@ def test_votes_kept_for_the_last_item_are_dropped_when_the_weights_change(mode: 
         every = names + [f"u{i}" for i in range(40 - len(names))]
         rules = ["true", "false"] + every + ["!" + f for f in every]
         learner = learners.make("weighted-majority", features=40, beta=0.5)
-    preds = []
-    for item, label in zip(items, labels, strict=True):
-        enc = learner.space.encode(item)
-        for _ in range(2):
-            preds.append(learner.predict(enc))
-            learner.learn(enc, label)
+    preds = predict_learn_twice(learner, items, labels)
     doubled = [item for item in items for _ in range(2)]
     ref_preds, ref_updates, _ = reference(
         rules, doubled, [y for y in labels for _ in range(2)], 0.5

@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 
 import learners
 from learners.winnow import Winnow
+from tests.learners.stream_helpers import predict_learn_twice
 
 VARIANTS = ["winnow2", "winnow1", "balanced"]
 TARGETS = ["disjunction", "conjunction"]
@@ -360,12 +361,8 @@ def test_score_kept_for_the_last_item_is_dropped_when_the_weights_change(
     rows[:, :used] = rng.random((400, used)) < 0.4
     labels = [int(rng.random() < 0.5) for _ in range(400)]
     learner = learners.make("winnow", features=n, variant=variant, target=target)
-    preds = []
-    for x, y in zip(rows, labels, strict=True):
-        enc = learner.space.encode({f"f{i}": float(x[i]) for i in range(used) if x[i]})
-        for _ in range(2):
-            preds.append(learner.predict(enc))
-            learner.learn(enc, y)
+    items = [{f"f{i}": float(x[i]) for i in range(used) if x[i]} for x in rows]
+    preds = predict_learn_twice(learner, items, labels)
     doubled = np.repeat(rows, 2, axis=0)
     ref_preds, ref_updates = dense_reference(
         n, variant, target, doubled, [y for y in labels for _ in range(2)], 2.0
