@@ -168,6 +168,11 @@ class Learner(ABC):
     #: True when the prediction function changes only at updates; only then does the served
     #: ceiling (1 + G) U hold under delayed labels.
     changes_only_on_update: bool = True
+    #: True when a label the hypothesis gets right changes nothing but :attr:`examples`, and the
+    #: prediction function changes only at updates. Then a vote that was right, with no update
+    #: since it was cast, is still right and learning its label changes nothing:
+    #: :meth:`note_right` counts it without reading the item (``service.streams`` does this).
+    learns_only_when_wrong: ClassVar[bool] = False
 
     def __init__(self, features: int | list[str] | FeatureSpace) -> None:
         self.space = features if isinstance(features, FeatureSpace) else FeatureSpace(features)
@@ -231,15 +236,34 @@ class Learner(ABC):
         """Predict 0 or 1 for one item. Does not learn."""
         return self._predict(self.encode(item))
 
+    def predict_checked(self, enc: Encoded) -> int:
+        """:meth:`predict` for an item this learner has encoded and checked already (see
+        :meth:`learn_checked`)."""
+        return self._predict(enc)
+
     def learn(self, item: Item | Encoded, label: Any) -> bool:
         """Learn from one labelled item; return True when the hypothesis was updated."""
-        y = check_label(label)
-        enc = self.encode(item)
+        return self.learn_checked(self.encode(item), check_label(label))[1]
+
+    def note_right(self) -> None:
+        """Count a label this learner is known to get right (see :attr:`learns_only_when_wrong`):
+        the same as learning it, without reading the item."""
+        if not self.learns_only_when_wrong:
+            raise TypeError(f"{self.kind} learns from labels it gets right; call learn")
+        self.examples += 1
+
+    def learn_checked(self, enc: Encoded, y: int) -> tuple[bool, bool]:
+        """:meth:`learn` for an item this learner has encoded and checked already, with a label
+        that is 0 or 1 already; return (hypothesis was wrong, hypothesis updated).
+
+        For a caller that checks each item once for a whole panel (``service.streams``): it
+        skips the per-learner checks, which cost as much as a converged learner's step.
+        """
         wrong, updated = self._learn(enc, y)
         self.examples += 1
         self.mistakes += wrong
         self.updates += updated
-        return updated
+        return wrong, updated
 
     @property
     def counted(self) -> int:

@@ -47,6 +47,7 @@ class Elimination(Learner):
     """Elimination for conjunctions; ``negations=True`` allows negated literals."""
 
     kind = "elimination"
+    learns_only_when_wrong = True  # a right prediction changes nothing
 
     def __init__(self, features: int | list[str] | FeatureSpace, negations: bool = False) -> None:
         super().__init__(features)

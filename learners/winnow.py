@@ -108,6 +108,7 @@ class Winnow(Learner):
     """Winnow2, Winnow1 and balanced Winnow, for disjunctions or (by complement) conjunctions."""
 
     kind = "winnow"
+    learns_only_when_wrong = True  # weights move only on a mistake
 
     def __init__(
         self,

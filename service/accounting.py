@@ -87,6 +87,10 @@ class Seat:
         self.history_points = history_points
         self.learner: Learner = learners.make(kind, features=space, **params)
         self.epoch = 0
+        # The stream's prediction count at this seat's last update (``Stream._learn``). Not
+        # stored: after a restore every later prediction follows every earlier update, and the
+        # restored predictions are never skipped (``Pending.seq`` is -1).
+        self.changed_at = 0
         self._fresh(t)
         self.past: list[dict[str, Any]] = []
         self.alerts: list[dict[str, Any]] = []
@@ -139,9 +143,7 @@ class Seat:
     def learn(self, item_id: str, enc: Any, y: int) -> tuple[bool, bool]:
         """Let the learner learn one label; return (hypothesis was wrong, it updated)."""
         learner = self.learner
-        before = learner.mistakes
-        updated = learner.learn(enc, y)
-        wrong = learner.mistakes > before
+        wrong, updated = learner.learn_checked(enc, y)  # the stream checked enc and y once
         if updated:
             self.total_updates += 1
             if self.outstanding > self.max_outstanding:

@@ -26,7 +26,7 @@ from collections.abc import Mapping, Sequence
 from json.encoder import encode_basestring_ascii as _quote  # what json.dumps uses
 from typing import Any
 
-from learners import Encoded, FeatureSpace, LearnerError
+from learners import Encoded, FeatureSpace, Learner, LearnerError
 from service.accounting import Seat, mcnemar_exact
 from service.errors import Conflict, InvalidInput
 
@@ -93,16 +93,24 @@ class ItemError(Exception):
 class Pending:
     """A served prediction waiting for its label."""
 
-    __slots__ = ("t", "enc", "votes", "epochs", "fp")
+    __slots__ = ("t", "enc", "votes", "epochs", "fp", "seq")
 
     def __init__(
-        self, t: float, enc: Encoded, votes: tuple[int, ...], epochs: tuple[int, ...], fp: str
+        self,
+        t: float,
+        enc: Encoded,
+        votes: tuple[int, ...],
+        epochs: tuple[int, ...],
+        fp: str,
+        seq: int = -1,
     ) -> None:
         self.t = t
         self.enc = enc
         self.votes = votes
         self.epochs = epochs
         self.fp = fp
+        # The stream's prediction count before this one's batch; -1 when restored (unknown).
+        self.seq = seq
 
 
 class Resolved:
@@ -257,13 +265,13 @@ class Stream:
             elif known.fp != fp or (isinstance(known, Resolved) and known.votes is None):
                 raise ItemError(index, self._reused(item_id, "before"))
         encoded, panel_votes = self._encode([items[i][1] for i in fresh], fresh)
-        pending, epochs = self.pending, self.epochs
+        pending, epochs, seq = self.pending, self.epochs, self.counts["predictions"]
         fresh_votes: dict[int, tuple[int, ...]] = {}
         for index, enc, votes in zip(fresh, encoded, panel_votes, strict=True):
             # The bare indices only: the views the learners built are rebuilt at label time,
             # so a waiting prediction costs little memory.
             bare = Encoded(enc.keys, enc.vals)
-            pending[items[index][0]] = Pending(t, bare, votes, epochs, prints[index])
+            pending[items[index][0]] = Pending(t, bare, votes, epochs, prints[index], seq)
             fresh_votes[index] = votes
         if fresh:
             for seat in self.seats:
@@ -360,6 +368,8 @@ class Stream:
         if p is None:  # a labelled example: "wrong" is the hypothesis at label time
             for i, seat in enumerate(self.seats):
                 wrong, updated = seat.learn(item_id, enc, y)
+                if updated:
+                    seat.changed_at = self.counts["predictions"]
                 wrong_bits |= wrong << i
                 updated_bits |= updated << i
                 alert = seat.settle(t, updated, policy)
@@ -375,7 +385,20 @@ class Stream:
             vote_wrong = votes[i] != y
             seat.observe_vote(vote_wrong, served_wrong, same_epoch)
             wrong_bits |= vote_wrong << i
-            _, updated = seat.learn(item_id, enc, y)
+            learner = seat.learner
+            if (
+                not vote_wrong
+                and same_epoch
+                and seat.changed_at <= p.seq
+                and learner.learns_only_when_wrong
+            ):
+                # Its vote was right and it has not changed since: learning changes nothing.
+                learner.note_right()
+                updated = False
+            else:
+                _, updated = seat.learn(item_id, enc, y)
+                if updated:
+                    seat.changed_at = self.counts["predictions"]
             updated_bits |= updated << i
             alert = seat.settle(t, (same_epoch and vote_wrong) or updated, policy)
             if alert is not None:
@@ -398,6 +421,8 @@ class Stream:
         """
         space = self.space
         panel = [seat.learner for seat in self.seats]
+        # Only the learners with their own check read an item twice (check, then vote).
+        checkers = [learner for learner in panel if type(learner).check is not Learner.check]
         mark = len(space.names)
         encoded: list[Encoded] = []
         votes: list[tuple[int, ...]] = []
@@ -406,11 +431,10 @@ class Stream:
             for item in features:
                 encoded.append(space.encode(item))
             for enc in encoded:
+                for learner in checkers:
+                    learner.check(enc)
                 if vote:
-                    votes.append(tuple([learner.predict(enc) for learner in panel]))
-                else:
-                    for learner in panel:
-                        learner.check(enc)
+                    votes.append(tuple([learner.predict_checked(enc) for learner in panel]))
                 read += 1
         except LearnerError as exc:
             for name in space.names[mark:]:

@@ -93,6 +93,36 @@ def test_state_round_trip_continues_exactly(kind: str, params: dict[str, Any]) -
 
 
 @pytest.mark.parametrize(("kind", "params"), CASES)
+def test_a_learner_that_learns_only_when_wrong_changes_nothing_on_a_right_label(
+    kind: str, params: dict[str, Any]
+) -> None:
+    # learns_only_when_wrong lets a stream skip a learner whose vote was right (service.streams):
+    # on every label it predicts right, learning must change nothing but the examples count,
+    # and it must predict as before. A learner that claims less must refuse note_right.
+    learner = learners.make(kind, features=50, **params)
+    if not learner.learns_only_when_wrong:
+        with pytest.raises(TypeError):
+            learner.note_right()
+        return
+    right = 0
+    for item, label in stream(seed=21, length=300):
+        enc = learner.encode(item)
+        if learner.predict(enc) != label:
+            learner.learn(enc, label)
+            continue
+        right += 1
+        before = learner.to_state()
+        assert learner.learn(enc, label) is False
+        after = learner.to_state()
+        assert after["counts"]["examples"] == before["counts"]["examples"] + 1
+        after["counts"]["examples"] -= 1
+        assert after == before
+        learner.note_right()  # the same again, counted without the item
+        assert learner.examples == before["counts"]["examples"] + 2
+    assert right > 50  # the stream exercised the claim
+
+
+@pytest.mark.parametrize(("kind", "params"), CASES)
 @pytest.mark.parametrize("flags_only", [False, True])
 def test_ceiling_value_and_counts_agree_with_ceiling_after_every_label(
     kind: str, params: dict[str, Any], flags_only: bool

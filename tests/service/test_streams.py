@@ -106,3 +106,104 @@ def test_answers_and_outcomes_say_what_the_contract_says() -> None:
     again = stream.apply_predict(3.0, items[:5])
     assert [a["votes"] for a in again] == [a["votes"] for a in answers[:5]]
     assert all(a["duplicate"] for a in again)
+
+
+SKIP_PANEL = [
+    {"name": "elim", "kind": "elimination", "params": {}},
+    {"name": "elim-neg", "kind": "elimination", "params": {"negations": True}},
+    {"name": "win", "kind": "winnow", "params": {}},
+    {"name": "win-bal", "kind": "winnow", "params": {"variant": "balanced"}},
+    {"name": "perc", "kind": "perceptron", "params": {}},
+    {"name": "wm", "kind": "weighted-majority", "params": {}},
+]
+
+
+def panel_stream() -> Stream:
+    config = {
+        "stream": "s",
+        "features": 6,
+        "learners": SKIP_PANEL,
+        "serve": "elim",
+        "label_wait_seconds": 1e9,
+        "on_exceed": "keep",
+        "near": 0.8,
+        "webhook": None,
+    }
+    return Stream(config, 0.0, history_points=50, max_remembered=10**6)
+
+
+STEPS = st.lists(
+    st.tuples(
+        st.sampled_from(["predict", "feedback", "examples", "restore"]),
+        st.integers(min_value=1, max_value=6),
+        st.integers(min_value=0, max_value=2**32 - 1),
+    ),
+    min_size=1,
+    max_size=60,
+)
+
+
+@settings(max_examples=200, deadline=None)
+@given(STEPS)
+def test_the_panel_learns_as_each_learner_would_alone(steps: list[tuple[str, int, int]]) -> None:
+    """A stream checks each item once for the panel, and does not call a learner that only
+    learns from its mistakes when its vote was right and it has not changed since
+    (``learns_only_when_wrong``). Across predictions labelled late and out of order, labelled
+    examples in between, and restores from a snapshot, every learner must still end where the
+    same learner run alone through the plain protocol (``predict``, then ``learn`` on each
+    label in the stream's order) ends: the same counts and the same learned state, and the
+    same per-label outcomes."""
+    # The reference is the learners' own public protocol (learners.base: predict and learn),
+    # with DESIGN.md's accounting: each label's "wrong" is the vote cast at predict time.
+    import learners
+
+    stream = panel_stream()
+    space = learners.FeatureSpace(6)
+    alone = [learners.make(spec["kind"], features=space, **spec["params"]) for spec in SKIP_PANEL]
+    flags = [f"f{i}" for i in range(6)]
+    waiting: dict[str, tuple[Any, list[int], list[str]]] = {}
+    count = 0
+    t = 1.0
+    for kind, size, seed in steps:
+        rng = random.Random(seed)
+        t += 1.0
+        if kind == "restore":
+            state = json.loads(json.dumps(stream.to_state()))
+            stream = Stream.from_state(state, history_points=50, max_remembered=10**6)
+            continue
+        if kind == "feedback":
+            ids = rng.sample(sorted(waiting), min(size, len(waiting)))
+            labels = [rng.randint(0, 1) for _ in ids]
+            outcomes = stream.apply_feedback(t, list(zip(ids, labels, strict=True)))
+            for item_id, y, outcome in zip(ids, labels, outcomes, strict=True):
+                enc, votes, _ = waiting.pop(item_id)
+                for i, learner in enumerate(alone):
+                    updated = learner.learn(enc, y)
+                    name = SKIP_PANEL[i]["name"]
+                    assert outcome["learners"][name] == {"wrong": votes[i] != y, "updated": updated}
+            continue
+        items = []
+        for _ in range(size):
+            count += 1
+            items.append((f"i{count}", rng.sample(flags, rng.randint(0, 4))))
+        if kind == "predict":
+            answers = stream.apply_predict(t, items)
+            for (item_id, features), answer in zip(items, answers, strict=True):
+                enc = space.encode(features)
+                votes = [learner.predict(enc) for learner in alone]
+                assert [answer["votes"][spec["name"]] for spec in SKIP_PANEL] == votes
+                waiting[item_id] = (enc, votes, features)
+        else:
+            labelled = [(item_id, f, rng.randint(0, 1)) for item_id, f in items]
+            outcomes = stream.apply_examples(t, labelled)
+            for (_, features, y), outcome in zip(labelled, outcomes, strict=True):
+                enc = space.encode(features)
+                for i, learner in enumerate(alone):
+                    before = learner.mistakes
+                    updated = learner.learn(enc, y)
+                    wrong = learner.mistakes > before
+                    name = SKIP_PANEL[i]["name"]
+                    assert outcome["learners"][name] == {"wrong": wrong, "updated": updated}
+    for seat, learner in zip(stream.seats, alone, strict=True):
+        ours = seat.learner.to_state(include_space=False)
+        assert ours == learner.to_state(include_space=False), seat.name
