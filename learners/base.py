@@ -168,11 +168,6 @@ class Learner(ABC):
     #: True when the prediction function changes only at updates; only then does the served
     #: ceiling (1 + G) U hold under delayed labels.
     changes_only_on_update: bool = True
-    #: True when a label the hypothesis gets right changes nothing but :attr:`examples`, and the
-    #: prediction function changes only at updates. Then a vote that was right, with no update
-    #: since it was cast, is still right and learning its label changes nothing:
-    #: :meth:`note_right` counts it without reading the item (``service.streams`` does this).
-    learns_only_when_wrong: ClassVar[bool] = False
 
     def __init__(self, features: int | list[str] | FeatureSpace) -> None:
         self.space = features if isinstance(features, FeatureSpace) else FeatureSpace(features)
@@ -194,6 +189,11 @@ class Learner(ABC):
     @abstractmethod
     def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
         """Learn one labelled item; return (hypothesis was wrong, hypothesis updated)."""
+
+    def _learn_right(self, enc: Encoded, y: int) -> bool:
+        """Learn a label the hypothesis is known to predict (see :meth:`learn_checked`); return
+        whether it updated. The default learns as usual; a learner overrides it to skip work."""
+        return self._learn(enc, y)[1]
 
     @abstractmethod
     def ceiling(self) -> Ceiling:
@@ -245,21 +245,22 @@ class Learner(ABC):
         """Learn from one labelled item; return True when the hypothesis was updated."""
         return self.learn_checked(self.encode(item), check_label(label))[1]
 
-    def note_right(self) -> None:
-        """Count a label this learner is known to get right (see :attr:`learns_only_when_wrong`):
-        the same as learning it, without reading the item."""
-        if not self.learns_only_when_wrong:
-            raise TypeError(f"{self.kind} learns from labels it gets right; call learn")
-        self.examples += 1
-
-    def learn_checked(self, enc: Encoded, y: int) -> tuple[bool, bool]:
+    def learn_checked(self, enc: Encoded, y: int, *, right: bool = False) -> tuple[bool, bool]:
         """:meth:`learn` for an item this learner has encoded and checked already, with a label
         that is 0 or 1 already; return (hypothesis was wrong, hypothesis updated).
 
         For a caller that checks each item once for a whole panel (``service.streams``): it
         skips the per-learner checks, which cost as much as a converged learner's step.
+
+        ``right`` tells that the hypothesis is known to predict ``y`` on this item: the caller
+        holds its vote on the item, which was ``y``, and the learner has not updated since
+        (valid only when :attr:`changes_only_on_update`). A learner may then skip computing its
+        prediction (:meth:`_learn_right`); the result is the same as without the hint.
         """
-        wrong, updated = self._learn(enc, y)
+        if right:
+            wrong, updated = False, self._learn_right(enc, y)
+        else:
+            wrong, updated = self._learn(enc, y)
         self.examples += 1
         self.mistakes += wrong
         self.updates += updated

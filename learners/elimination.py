@@ -47,7 +47,6 @@ class Elimination(Learner):
     """Elimination for conjunctions; ``negations=True`` allows negated literals."""
 
     kind = "elimination"
-    learns_only_when_wrong = True  # a right prediction changes nothing
 
     def __init__(self, features: int | list[str] | FeatureSpace, negations: bool = False) -> None:
         super().__init__(features)
@@ -81,6 +80,9 @@ class Elimination(Learner):
         if self.negations and not enc.on <= self.allowed:
             return 0
         return 1
+
+    def _learn_right(self, enc: Encoded, y: int) -> bool:
+        return False  # a right prediction changes nothing
 
     def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
         predicted = self._predict(enc)

@@ -232,22 +232,7 @@ class WeightedMajority(Learner):
     def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
         slots, at_pos, at_neg, ones, zeros = self._tally(enc)
         wrong = int(ones > zeros) != y
-        d = self._d
-        if self._map is None and len(d) < len(self.space.names):
-            d = self._d = ensure_length(d, len(self.space.names), 0)
-            self._on1 = ensure_length(self._on1, len(self.space.names), 0)
-            if self._spread is not None:
-                self._spread.values = d
-        old = d[slots]
-        if y:
-            self.labels1 += 1
-            self._on1[slots] += 1
-            d[slots] = old - 1
-        else:
-            self.labels0 += 1
-            d[slots] = old + 1
-        if self._spread is not None and len(old):
-            self._spread.move(old, -1 if y else 1)
+        self._count_label(slots, y)
         if wrong:
             self._cache = None  # the weights change
             b = self.beta
@@ -264,9 +249,38 @@ class WeightedMajority(Learner):
                 if abs(exponent) > _NORMAL_EXPONENT:
                     pos.rescale(-exponent)
                     neg.rescale(-exponent)
+        self._note_contradiction()
+        return wrong, wrong
+
+    def _learn_right(self, enc: Encoded, y: int) -> bool:
+        # The master is right, so the weights stay; only every rule's mistakes move.
+        self._count_label(self._slots(enc), y)
+        self._note_contradiction()
+        return False
+
+    def _count_label(self, slots: np.ndarray, y: int) -> None:
+        """Every rule's mistakes after one more label: the balances ``D`` of the item's flags,
+        the label counts and the spread of ``D``."""
+        d = self._d
+        if self._map is None and len(d) < len(self.space.names):
+            d = self._d = ensure_length(d, len(self.space.names), 0)
+            self._on1 = ensure_length(self._on1, len(self.space.names), 0)
+            if self._spread is not None:
+                self._spread.values = d
+        old = d[slots]
+        if y:
+            self.labels1 += 1
+            self._on1[slots] += 1
+            d[slots] = old - 1
+        else:
+            self.labels0 += 1
+            d[slots] = old + 1
+        if self._spread is not None and len(old):
+            self._spread.move(old, -1 if y else 1)
+
+    def _note_contradiction(self) -> None:
         if self.beta == 0.0 and not self.contradicted and self.best_mistakes() > 0:
             self.contradicted = True  # no rule agrees with every label: the version space is empty
-        return wrong, wrong
 
     # -- every rule's mistakes ----------------------------------------------------------------
 

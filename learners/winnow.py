@@ -108,7 +108,6 @@ class Winnow(Learner):
     """Winnow2, Winnow1 and balanced Winnow, for disjunctions or (by complement) conjunctions."""
 
     kind = "winnow"
-    learns_only_when_wrong = True  # weights move only on a mistake
 
     def __init__(
         self,
@@ -213,6 +212,9 @@ class Winnow(Learner):
     def _predict(self, enc: Encoded) -> int:
         fires = int(self._tally(enc)[0] > self.theta)
         return 1 - fires if self.complement else fires
+
+    def _learn_right(self, enc: Encoded, y: int) -> bool:
+        return False  # weights move only on a mistake
 
     def _learn(self, enc: Encoded, y: int) -> tuple[bool, bool]:
         score, part, part_against = self._tally(enc)

@@ -140,10 +140,11 @@ class Seat:
             self.served_mistakes += 1
             self.total_served += 1
 
-    def learn(self, item_id: str, enc: Any, y: int) -> tuple[bool, bool]:
-        """Let the learner learn one label; return (hypothesis was wrong, it updated)."""
+    def learn(self, item_id: str, enc: Any, y: int, right: bool = False) -> tuple[bool, bool]:
+        """Let the learner learn one label; return (hypothesis was wrong, it updated).
+        ``right``: it is known to predict the label (see ``Learner.learn_checked``)."""
         learner = self.learner
-        wrong, updated = learner.learn_checked(enc, y)  # the stream checked enc and y once
+        wrong, updated = learner.learn_checked(enc, y, right=right)  # enc and y checked once
         if updated:
             self.total_updates += 1
             if self.outstanding > self.max_outstanding:
@@ -166,6 +167,9 @@ class Seat:
         if changed:
             self._point(t, value)
         count = learner.updates if learner.counts == "updates" else learner.mistakes
+        if not learner.contradicted and (value is None or count < self.near * value):
+            self.alerted = None  # within: what standing() says here (near <= 1), read cheaply
+            return None
         state = standing(count, value, learner.contradicted, self.near)
         if state != "exceeded" and state != "contradicted":
             self.alerted = None

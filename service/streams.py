@@ -385,20 +385,16 @@ class Stream:
             vote_wrong = votes[i] != y
             seat.observe_vote(vote_wrong, served_wrong, same_epoch)
             wrong_bits |= vote_wrong << i
-            learner = seat.learner
-            if (
+            # Its vote was right and it has not updated since: it still predicts the label.
+            right = (
                 not vote_wrong
                 and same_epoch
                 and seat.changed_at <= p.seq
-                and learner.learns_only_when_wrong
-            ):
-                # Its vote was right and it has not changed since: learning changes nothing.
-                learner.note_right()
-                updated = False
-            else:
-                _, updated = seat.learn(item_id, enc, y)
-                if updated:
-                    seat.changed_at = self.counts["predictions"]
+                and seat.learner.changes_only_on_update
+            )
+            _, updated = seat.learn(item_id, enc, y, right)
+            if updated:
+                seat.changed_at = self.counts["predictions"]
             updated_bits |= updated << i
             alert = seat.settle(t, (same_epoch and vote_wrong) or updated, policy)
             if alert is not None:

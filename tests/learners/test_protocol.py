@@ -93,33 +93,25 @@ def test_state_round_trip_continues_exactly(kind: str, params: dict[str, Any]) -
 
 
 @pytest.mark.parametrize(("kind", "params"), CASES)
-def test_a_learner_that_learns_only_when_wrong_changes_nothing_on_a_right_label(
+def test_learning_a_label_known_to_be_predicted_ends_where_learning_it_does(
     kind: str, params: dict[str, Any]
 ) -> None:
-    # learns_only_when_wrong lets a stream skip a learner whose vote was right (service.streams):
-    # on every label it predicts right, learning must change nothing but the examples count,
-    # and it must predict as before. A learner that claims less must refuse note_right.
-    learner = learners.make(kind, features=50, **params)
-    if not learner.learns_only_when_wrong:
-        with pytest.raises(TypeError):
-            learner.note_right()
-        return
+    # A stream tells a learner whose prediction changes only at updates that its vote stands
+    # (learn_checked(right=True), service.streams), so it may skip computing the prediction.
+    # On every label it predicts, the hint must change nothing in the outcome: the same
+    # (wrong, updated), the same state, the same next predictions.
+    space = learners.FeatureSpace(50)  # shared, as in a stream's panel
+    hinted = learners.make(kind, features=space, **params)
+    plain = learners.make(kind, features=space, **params)
     right = 0
     for item, label in stream(seed=21, length=300):
-        enc = learner.encode(item)
-        if learner.predict(enc) != label:
-            learner.learn(enc, label)
-            continue
-        right += 1
-        before = learner.to_state()
-        assert learner.learn(enc, label) is False
-        after = learner.to_state()
-        assert after["counts"]["examples"] == before["counts"]["examples"] + 1
-        after["counts"]["examples"] -= 1
-        assert after == before
-        learner.note_right()  # the same again, counted without the item
-        assert learner.examples == before["counts"]["examples"] + 2
-    assert right > 50  # the stream exercised the claim
+        enc = plain.encode(item)
+        hint = plain.changes_only_on_update and plain.predict(enc) == label
+        right += hint
+        assert hinted.learn_checked(enc, label, right=hint) == plain.learn_checked(enc, label)
+        assert hinted.to_state() == plain.to_state()
+    if plain.changes_only_on_update:
+        assert right > 50  # the stream exercised the hint
 
 
 @pytest.mark.parametrize(("kind", "params"), CASES)

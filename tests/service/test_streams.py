@@ -146,13 +146,12 @@ STEPS = st.lists(
 @settings(max_examples=200, deadline=None)
 @given(STEPS)
 def test_the_panel_learns_as_each_learner_would_alone(steps: list[tuple[str, int, int]]) -> None:
-    """A stream checks each item once for the panel, and does not call a learner that only
-    learns from its mistakes when its vote was right and it has not changed since
-    (``learns_only_when_wrong``). Across predictions labelled late and out of order, labelled
-    examples in between, and restores from a snapshot, every learner must still end where the
-    same learner run alone through the plain protocol (``predict``, then ``learn`` on each
-    label in the stream's order) ends: the same counts and the same learned state, and the
-    same per-label outcomes."""
+    """A stream checks each item once for the panel, and tells a learner whose vote was right,
+    with no update since, that its vote stands (``learn_checked(right=True)``). Across
+    predictions labelled late and out of order, labelled examples in between, and restores
+    from a snapshot, every learner must still end where the same learner run alone through the
+    plain protocol (``predict``, then ``learn`` on each label in the stream's order) ends: the
+    same counts and the same learned state, and the same per-label outcomes."""
     # The reference is the learners' own public protocol (learners.base: predict and learn),
     # with DESIGN.md's accounting: each label's "wrong" is the vote cast at predict time.
     import learners
