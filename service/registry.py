@@ -9,8 +9,14 @@ Holding the lock from apply to append makes the log order the apply order.
 Requests that change nothing (a retried predict or label) are not logged; their future waits for
 everything queued before them, so a retry never answers before the original is durable.
 
-A background sweeper expires waiting predictions and snapshots streams that changed; every
-``snapshot_every_events`` events a stream is also snapshotted on the write path.
+A background sweeper expires waiting predictions and snapshots streams that changed. A stream
+is also snapshotted on the write path after ``snapshot_every_events`` events or
+``snapshot_every_items`` items, whichever comes first, but not before the items logged since its
+last snapshot reach ``snapshot_size_ratio`` times the ids the snapshot holds (its waiting
+predictions and remembered ids). A snapshot costs time in proportion to those ids, so the
+waiting keeps its cost per item bounded however many predictions wait for their labels; and
+the log after a snapshot (the replay after a crash) is then never much longer than the
+snapshot itself.
 """
 
 from __future__ import annotations
@@ -93,10 +99,11 @@ class Registry:
                 stream.new_alerts.clear()
             stream.last_seq = seq
             stream.unsnapshotted += 1
+            stream.unsnapshotted_items += _item_count(event)
             replayed += 1
         self.store.start()
         for stream in self.streams.values():
-            if stream.unsnapshotted >= self.settings.snapshot_every_events:
+            if self._snapshot_due(stream):
                 with stream.lock:
                     self._snapshot(stream)
         log.info("restored %d streams, replayed %d events", len(self.streams), replayed)
@@ -145,7 +152,20 @@ class Registry:
         body = json.dumps(stream.to_state(), separators=(",", ":"), allow_nan=False)
         self.store.snapshot(stream.name, stream.last_seq, body)
         stream.unsnapshotted = 0
+        stream.unsnapshotted_items = 0
         stream.snapshot_t = stream.last_t
+
+    def _snapshot_due(self, stream: Stream) -> bool:
+        """Whether the write path snapshots the stream now (see the module docstring)."""
+        settings = self.settings
+        logged = stream.unsnapshotted_items
+        if (
+            stream.unsnapshotted < settings.snapshot_every_events
+            and logged < settings.snapshot_every_items
+        ):
+            return False
+        held = len(stream.pending) + len(stream.resolved)
+        return logged >= settings.snapshot_size_ratio * held
 
     def _new_stream(self, config: dict[str, Any], t: float) -> Stream:
         return Stream(
@@ -426,6 +446,7 @@ class Registry:
             raise Unavailable(str(exc), field="store", rule="a working store") from exc
         stream.last_seq = seq
         stream.unsnapshotted += 1
+        stream.unsnapshotted_items += _item_count(event)
         alerts, stream.new_alerts = stream.new_alerts, []
         webhook = stream.config.get("webhook")
         if alerts and webhook and self.on_alert is not None:
@@ -438,7 +459,7 @@ class Registry:
                         hook(webhook, name, alert)
 
             future.add_done_callback(deliver)
-        if stream.unsnapshotted >= self.settings.snapshot_every_events:
+        if self._snapshot_due(stream):
             self._snapshot(stream)
         return future
 
@@ -511,3 +532,9 @@ def committed(future: Future[int]) -> None:
 
 
 __all__ = ["Registry", "StoreFailed", "committed"]
+
+
+def _item_count(event: dict[str, Any]) -> int:
+    """The items an event carries (predict, feedback, examples); 0 for the others."""
+    items = event.get("items")
+    return len(items) if isinstance(items, list) else 0

@@ -190,7 +190,8 @@ class Stream:
         self.lock = threading.RLock()
         self.deleted = False
         self.last_seq = 0
-        self.unsnapshotted = 0
+        self.unsnapshotted = 0  # events logged since the last snapshot
+        self.unsnapshotted_items = 0  # items in them
         self.snapshot_t = t
 
     # -- time ------------------------------------------------------------------------------

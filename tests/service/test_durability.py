@@ -225,7 +225,8 @@ def test_nothing_is_pickled(make_app: MakeApp, clock: Clock, data_dir: Path) -> 
 
 
 def test_snapshots_shorten_the_log(make_app: MakeApp, clock: Clock, data_dir: Path) -> None:
-    with running(make_app(snapshot_every_events=10, snapshot_interval_seconds=60)) as service:
+    app = make_app(snapshot_every_events=10, snapshot_interval_seconds=60, snapshot_size_ratio=0)
+    with running(app) as service:
         create(service, "north")
         for i in range(25):
             service.post("/v1/streams/north/predict", json={"id": f"s{i}", "features": ["f1"]})
@@ -243,6 +244,69 @@ def test_snapshots_shorten_the_log(make_app: MakeApp, clock: Clock, data_dir: Pa
         assert conn.execute("SELECT count(*) FROM events").fetchone()[0] == 0
         (seq,) = conn.execute("SELECT seq FROM snapshots WHERE stream = 'north'").fetchone()
         assert seq == service.registry.get("north").last_seq
+
+
+def test_a_snapshot_waits_until_the_log_since_the_last_is_as_long_as_itself(
+    make_app: MakeApp, data_dir: Path
+) -> None:
+    """With predictions waiting, a snapshot holds them all; it is written once the items logged
+    since the last snapshot reach as many (snapshot_size_ratio = 1), not every N events, so its
+    cost per logged item stays bounded; batches count by their items."""
+    app = make_app(
+        snapshot_every_events=4, snapshot_every_items=10**6, snapshot_interval_seconds=3600
+    )
+    with running(app) as service:
+        create(service, "north")
+        conn = sqlite3.connect(data_dir / FILE_NAME)
+
+        def logged() -> int:
+            service.registry.store.barrier().result(5)
+            return int(conn.execute("SELECT count(*) FROM events").fetchone()[0])
+
+        # Events 1..3 (create + 2 predicts of 10): fewer than 4 events, no snapshot.
+        for k in range(2):
+            items = [{"id": f"a{k}-{j}", "features": ["f1"]} for j in range(10)]
+            assert service.post("/v1/streams/north/predict", json={"items": items}).is_success
+        assert logged() == 3
+        # Event 4 (30 items since the start >= 30 waiting): the snapshot is due and taken.
+        items = [{"id": f"a2-{j}", "features": ["f1"]} for j in range(10)]
+        assert service.post("/v1/streams/north/predict", json={"items": items}).is_success
+        assert logged() == 0
+        # Four single predictions: 4 events, but 4 items < 34 waiting: no snapshot yet.
+        for j in range(4):
+            service.post("/v1/streams/north/predict", json={"id": f"b{j}", "features": ["f2"]})
+        assert logged() == 4
+        # 20 labels: 24 items since the snapshot < 34 ids held (14 waiting, 20 remembered).
+        labels = [{"id": f"a{k}-{j}", "label": 1} for k in range(3) for j in range(10)]
+        response = service.post("/v1/streams/north/feedback", json={"items": labels[:20]})
+        assert response.is_success
+        assert logged() == 5
+        # 10 more: 34 items since >= 34 held (4 waiting, 30 remembered): taken.
+        response = service.post("/v1/streams/north/feedback", json={"items": labels[20:]})
+        assert response.is_success
+        assert logged() == 0
+
+
+def test_batches_are_snapshotted_by_their_items(make_app: MakeApp, data_dir: Path) -> None:
+    """A few large events count by their items (snapshot_every_items), not as single events,
+    so the log a crash must replay stays short under batch traffic."""
+    app = make_app(
+        snapshot_every_events=1000,
+        snapshot_every_items=25,
+        snapshot_size_ratio=0,
+        snapshot_interval_seconds=3600,
+    )
+    with running(app) as service:
+        create(service, "north")
+        conn = sqlite3.connect(data_dir / FILE_NAME)
+        counts = []
+        for k in range(3):
+            items = [{"id": f"a{k}-{j}", "features": ["f1"]} for j in range(10)]
+            assert service.post("/v1/streams/north/predict", json={"items": items}).is_success
+            service.registry.store.barrier().result(5)
+            counts.append(conn.execute("SELECT count(*) FROM events").fetchone()[0])
+        # 10 and 20 items: no snapshot (2, then 3 events logged); 30 >= 25: taken.
+        assert counts == [2, 3, 0]
 
 
 @pytest.mark.parametrize(("setting", "pragma"), [("full", 2), ("normal", 1)])
