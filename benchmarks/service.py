@@ -18,7 +18,10 @@ What it runs, in order:
    examples, two predictions left waiting), whose resident memory is read from
    ``/proc/<pid>/status`` (VmRSS);
 4. the same six learners alone in this process on encoded items: the floor under the service's
-   cost per item (no HTTP, no validation, no store).
+   cost per item (no HTTP, no validation, no store);
+5. one snapshot of a stream with this panel holding 20,000 waiting predictions and 20,000
+   remembered ids, in this process: the cost per id held that ``snapshot_size_ratio`` spreads
+   over the items logged between snapshots.
 
 Goals (reported, never asserted): single predict at least 85% of the bare endpoint's call rate
 (reported at each number of calls in flight);
@@ -63,6 +66,7 @@ from rich.console import Console
 from rich.table import Table
 
 import learners
+from service.streams import Stream
 
 HOST = "127.0.0.1"  # the only address this benchmark talks to
 CONCURRENCY = 4  # calls in flight for single feedback, and the first level for single predict
@@ -319,6 +323,7 @@ class Figures:
     memory: dict[str, float] = field(default_factory=dict)
     panel: dict[str, float] = field(default_factory=dict)  # seconds per item, in process
     normal: Loop | None = None  # single predict with durability NORMAL
+    snapshot: tuple[int, float, int] | None = None  # ids held, seconds, bytes
 
 
 def predict_bodies(items: list[list[str]], prefix: str) -> list[bytes]:
@@ -515,6 +520,38 @@ def measure_panel(source: Items, figures: Figures) -> None:
     figures.panel["label"] = (time.process_time() - t0) / len(rest)
 
 
+def measure_snapshot(source: Items, figures: Figures) -> None:
+    """Time one snapshot (state, then JSON text, as ``Registry._snapshot`` writes it) of a
+    stream holding 20,000 waiting predictions and 20,000 remembered ids."""
+    config = {
+        "stream": STREAM,
+        "features": SPACE_SIZE,
+        "learners": [
+            {
+                "name": spec["name"],
+                "kind": spec["kind"],
+                "params": {k: v for k, v in spec.items() if k not in ("name", "kind")},
+            }
+            for spec in PANEL
+        ],
+        "serve": PANEL[0]["name"],
+        "label_wait_seconds": 1e9,
+        "on_exceed": "keep",
+        "near": 0.8,
+        "webhook": None,
+    }
+    stream = Stream(config, 0.0, history_points=500, max_remembered=10**6)
+    items, labels = source.draw(40_000)
+    for start in range(0, len(items), BATCH):
+        rows = range(start, start + BATCH)
+        stream.apply_predict(1.0 + start, [(f"p{j}", items[j]) for j in rows])
+    stream.apply_feedback(1e5, [(f"p{j}", labels[j]) for j in range(20_000)])
+    held = len(stream.pending) + len(stream.resolved)
+    t0 = time.process_time()
+    text = json.dumps(stream.to_state(), separators=(",", ":"), allow_nan=False)
+    figures.snapshot = (held, time.process_time() - t0, len(text))
+
+
 def measure_memory(work: Path, source: Items, args: argparse.Namespace, figures: Figures) -> None:
     port = free_port()
     env = server_env(
@@ -707,6 +744,16 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
             "",
             f"{figures.panel['predict'] * 1e6:,.1f} /item",
         )
+    if figures.snapshot is not None:
+        held, seconds, size = figures.snapshot
+        table.add_row(
+            f"snapshot of a stream holding {held:,} ids",
+            f"{seconds * 1e3:,.0f} ms",
+            "",
+            "",
+            f"{seconds / held * 1e6:,.1f} /id",
+        )
+        table.add_row("  its JSON text", f"{size / 2**20:,.1f} MiB")
     console.print(table)
     console.print(
         "One durable commit (SQLite, WAL, synchronous=FULL) in this file system: median "
@@ -758,6 +805,7 @@ def main(argv: list[str] | None = None) -> None:
             console.print(f"memory: {args.streams:,} streams ...")
             measure_memory(work, source, args, figures)
     measure_panel(source, figures)
+    measure_snapshot(source, figures)
     report(figures, args, console)
 
 

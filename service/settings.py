@@ -58,10 +58,10 @@ class Settings(BaseSettings):
     group_commit_max_events: int = Field(1000, ge=1, description="most events in one commit")
     snapshot_every_events: int = Field(5000, ge=1, description="events per stream per snapshot")
     snapshot_every_items: int = Field(
-        50_000, ge=1, description="items per stream per snapshot (whichever comes first)"
+        100_000, ge=1, description="items per stream per snapshot (whichever comes first)"
     )
     snapshot_size_ratio: float = Field(
-        1.0,
+        2.0,
         ge=0,
         description="a snapshot also waits until the items logged since the last one reach this "
         "many times the ids it holds (waiting predictions and remembered ids); 0: never waits",

@@ -253,7 +253,10 @@ def test_a_snapshot_waits_until_the_log_since_the_last_is_as_long_as_itself(
     since the last snapshot reach as many (snapshot_size_ratio = 1), not every N events, so its
     cost per logged item stays bounded; batches count by their items."""
     app = make_app(
-        snapshot_every_events=4, snapshot_every_items=10**6, snapshot_interval_seconds=3600
+        snapshot_every_events=4,
+        snapshot_every_items=10**6,
+        snapshot_size_ratio=1,
+        snapshot_interval_seconds=3600,
     )
     with running(app) as service:
         create(service, "north")
