@@ -54,9 +54,6 @@ from service.store import Store
 from service.writes import FastWrites, Writes, committed
 
 VERSION = "0.1.0"
-_ERRORS: dict[int | str, dict[str, Any]] = {
-    code: {"model": schemas.ErrorBody} for code in (401, 403, 404, 409, 410, 413, 422, 503)
-}
 
 
 class StrictJSONRequest(Request):
@@ -213,7 +210,10 @@ def create_app(
             )
 
     api = APIRouter(
-        prefix="/v1", route_class=StrictJSONRoute, responses=_ERRORS, dependencies=[Depends(ready)]
+        prefix="/v1",
+        route_class=StrictJSONRoute,
+        responses=schemas.ERROR_RESPONSES,
+        dependencies=[Depends(ready)],
     )
 
     @api.post("/streams", status_code=201, response_model=schemas.StreamDescription)

@@ -487,6 +487,12 @@ class ErrorBody(BaseModel):
     error: ErrorDetail
 
 
+# The refusals the /v1 routes document in the OpenAPI schema, all in the one error shape.
+ERROR_RESPONSES: dict[int | str, dict[str, Any]] = {
+    code: {"model": ErrorBody} for code in (401, 403, 404, 409, 410, 413, 422, 503)
+}
+
+
 class StreamDeleted(BaseModel):
     stream: str
     deleted: Literal[True]

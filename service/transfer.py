@@ -96,10 +96,6 @@ def export_document(registry: Registry, name: str) -> tuple[bytes, Future[int]]:
 
 # -- the routes --------------------------------------------------------------------------------
 
-_ERRORS: dict[int | str, dict[str, Any]] = {
-    code: {"model": schemas.ErrorBody} for code in (401, 403, 404, 409, 410, 413, 422, 503)
-}
-
 
 def router(
     registry: Registry,
@@ -109,7 +105,9 @@ def router(
     dependencies: Sequence[Any] = (),
 ) -> APIRouter:
     """The export and import routes over ``registry``; ``who`` is the app's token dependency."""
-    api = APIRouter(prefix="/v1", responses=_ERRORS, dependencies=list(dependencies))
+    api = APIRouter(
+        prefix="/v1", responses=schemas.ERROR_RESPONSES, dependencies=list(dependencies)
+    )
     principal_of = Depends(who)
 
     @api.get("/streams/{stream}/export", response_model=StreamExport)
