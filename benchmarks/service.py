@@ -62,6 +62,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from prometheus_client.parser import text_string_to_metric_families
 from rich.console import Console
 from rich.table import Table
 
@@ -135,6 +136,13 @@ def free_port() -> int:
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
         sock.bind((HOST, 0))
         return int(sock.getsockname()[1])
+
+
+def service_env(args: argparse.Namespace, **extra: str) -> dict[str, str]:
+    """The environment of a service server: ``server_env`` with the settings asked for."""
+    if args.gc_young_threshold is not None:
+        extra["MISTAKE_LEDGER_GC_YOUNG_THRESHOLD"] = str(args.gc_young_threshold)
+    return server_env(**extra)
 
 
 def server_env(**extra: str) -> dict[str, str]:
@@ -324,6 +332,7 @@ class Figures:
     panel: dict[str, float] = field(default_factory=dict)  # seconds per item, in process
     normal: Loop | None = None  # single predict with durability NORMAL
     snapshot: tuple[int, float, int] | None = None  # ids held, seconds, bytes
+    collections: dict[str, float] = field(default_factory=dict)  # gc generation -> count
 
 
 def predict_bodies(items: list[list[str]], prefix: str) -> list[bytes]:
@@ -345,6 +354,20 @@ def measure_bare(work: Path, bodies: list[bytes], args: argparse.Namespace) -> d
             )
             loops[level] = checked(loop, "bare endpoint")
     return loops
+
+
+def gc_collections(port: int) -> dict[str, float]:
+    """The server's garbage collections so far per generation (python_gc_collections_total)."""
+    status, data = call(port, "GET", "/metrics")
+    if status != 200:
+        raise RuntimeError(f"/metrics: {status} {data[:300]!r}")
+    out: dict[str, float] = {}
+    for family in text_string_to_metric_families(data.decode()):
+        if family.name == "python_gc_collections":
+            for sample in family.samples:
+                if sample.name == "python_gc_collections_total":
+                    out[sample.labels["generation"]] = sample.value
+    return out
 
 
 def commit_seconds(directory: Path, commits: int = 200) -> tuple[float, float]:
@@ -395,7 +418,7 @@ def measure_service(
     console: Console,
 ) -> None:
     port = free_port()
-    env = server_env(MISTAKE_LEDGER_SWEEP_INTERVAL_SECONDS="3600")
+    env = service_env(args, MISTAKE_LEDGER_SWEEP_INTERVAL_SECONDS="3600")
     with server(serve_command(port, work / "data"), env, work / "service.log", port) as srv:
         create_stream(port, STREAM)
         base = f"/v1/streams/{STREAM}"
@@ -408,6 +431,7 @@ def measure_service(
 
         warm = bodies[: args.warmup]
         checked(run_loop(port, base + "/predict", warm, threads=CONCURRENCY, seconds=10), "warm-up")
+        collected = gc_collections(port)
         figures.predict[CONCURRENCY] = loop = timed("predict", bodies[args.warmup :], CONCURRENCY)
         console.print(f"  single predict, {CONCURRENCY} in flight: {loop.calls} calls")
         first = loop
@@ -461,6 +485,9 @@ def measure_service(
             BATCH_CONCURRENCY,
         )
         figures.batch["examples"] = (len(loop.done) * BATCH, loop)
+        figures.collections = {
+            gen: count - collected.get(gen, 0.0) for gen, count in gc_collections(port).items()
+        }
         status, data = call(port, "GET", base + "/ledger")
         if status != 200:
             raise RuntimeError(f"ledger: {status} {data[:300]!r}")
@@ -476,7 +503,7 @@ def measure_normal(
 ) -> None:
     """Single predict calls with durability NORMAL (no fsync per commit), for comparison."""
     port = free_port()
-    env = server_env(MISTAKE_LEDGER_DURABILITY="normal")
+    env = service_env(args, MISTAKE_LEDGER_DURABILITY="normal")
     with server(serve_command(port, work / "normal"), env, work / "normal.log", port) as srv:
         create_stream(port, STREAM)
         path = f"/v1/streams/{STREAM}/predict"
@@ -554,7 +581,8 @@ def measure_snapshot(source: Items, figures: Figures) -> None:
 
 def measure_memory(work: Path, source: Items, args: argparse.Namespace, figures: Figures) -> None:
     port = free_port()
-    env = server_env(
+    env = service_env(
+        args,
         MISTAKE_LEDGER_MAX_STREAMS=str(args.streams),
         MISTAKE_LEDGER_SWEEP_INTERVAL_SECONDS="3600",
     )
@@ -762,6 +790,11 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
         "its commit; with k calls in flight at most k share one, so with few in flight the "
         "service waits on the disk, not on its CPU (compare the server CPU per call)."
     )
+    if figures.collections:
+        counts = ", ".join(
+            f"generation {gen}: {count:,.0f}" for gen, count in sorted(figures.collections.items())
+        )
+        console.print(f"Garbage collections in the service during its timed loops: {counts}.")
     console.print(
         f"Client: one thread with a keep-alive connection per call in flight for single calls "
         f"({CONCURRENCY} for feedback), {BATCH_CONCURRENCY} for batches; each loop at most "
@@ -786,6 +819,12 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--batches", type=int, default=30, help="most batches per batch loop")
     parser.add_argument("--streams", type=int, default=10_000, help="streams for the memory run")
     parser.add_argument("--skip-memory", action="store_true", help="leave out the memory run")
+    parser.add_argument(
+        "--gc-young-threshold",
+        type=int,
+        default=None,
+        help="the service's MISTAKE_LEDGER_GC_YOUNG_THRESHOLD (default: its own default)",
+    )
     args = parser.parse_args(argv)
     console = Console(width=max(Console().width, 140))
     figures = Figures()

@@ -39,7 +39,14 @@ from fastapi import APIRouter, Depends, FastAPI, Request, Response
 from fastapi.responses import JSONResponse
 from fastapi.routing import APIRoute
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
-from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    CollectorRegistry,
+    GCCollector,
+    PlatformCollector,
+    ProcessCollector,
+    generate_latest,
+)
 from starlette.concurrency import run_in_threadpool
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
@@ -158,6 +165,10 @@ def create_app(
     streams.on_alert = lambda url, stream, alert: sender.submit(url, {"stream": stream, **alert})
     guard = Guard(settings)
     metrics_registry.register(LedgerCollector(streams, stream_label=settings.metrics_stream_label))
+    # The client library's standard process, platform and garbage-collector metrics.
+    ProcessCollector(registry=metrics_registry)
+    PlatformCollector(registry=metrics_registry)
+    GCCollector(registry=metrics_registry)
     bearer = HTTPBearer(auto_error=False, description="admin, stream or metrics token")
 
     @asynccontextmanager

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 import logging
 from pathlib import Path
 from typing import Any
@@ -55,6 +56,11 @@ def serve(
             "tokens) or listen on 127.0.0.1."
         )
     logging.basicConfig(level=log_level.upper(), format="%(asctime)s %(name)s %(message)s")
+    # A process-wide setting, so the entry point makes it (not create_app). Every request makes
+    # thousands of short-lived containers; at Python's default, the collector then runs every
+    # few requests and its older generations rescan the streams' state as it grows.
+    # benchmarks/service.py prints the collections (python_gc_collections_total) it costs.
+    gc.set_threshold(settings.gc_young_threshold, *gc.get_threshold()[1:])
     app = create_app(settings)
     uvicorn.run(app, host=host, port=port, workers=1, log_level=log_level, lifespan="on")
 

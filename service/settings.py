@@ -68,6 +68,13 @@ class Settings(BaseSettings):
     )
     snapshot_interval_seconds: float = Field(300.0, gt=0, description="snapshot a changed stream")
     sweep_interval_seconds: float = Field(30.0, gt=0, description="expire waiting predictions")
+    gc_young_threshold: int = Field(
+        50_000,
+        ge=0,
+        description="`serve` only: Python's gc threshold0 for the process, the net allocations "
+        "between collections of young objects (Python's default is 700; 0 stops automatic "
+        "collection)",
+    )
 
     # security
     admin_token: SecretStr | None = Field(None, description="token that manages streams")

@@ -30,12 +30,19 @@ CONTRACT = {
 }
 
 
+STANDARD = ("process_", "python_info", "python_gc_")
+
+
 def scrape(service: Running) -> dict[str, dict[tuple[tuple[str, str], ...], float]]:
     """{sample name: {sorted labels: value}} from the text format."""
     # Reference parser: prometheus_client.parser (Prometheus exposition format, text-based).
     text = service.get("/metrics").text
     out: dict[str, dict[tuple[tuple[str, str], ...], float]] = {}
     for family in text_string_to_metric_families(text):
+        if not family.name.startswith("mistake_ledger_"):
+            # The client library's standard process, platform and gc metrics (prometheus_client).
+            assert family.name.startswith(STANDARD), family.name
+            continue
         assert CONTRACT.get(family.name) == family.type, family.name
         for sample in family.samples:
             out.setdefault(sample.name, {})[tuple(sorted(sample.labels.items()))] = sample.value
