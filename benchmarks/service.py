@@ -518,7 +518,9 @@ def measure_normal(
 
 def measure_panel(source: Items, figures: Figures) -> None:
     """The six learners alone in this process (no HTTP, no store): the floor under the service's
-    per-item cost. Each label is learned and then the ceiling read, as the service does."""
+    per-item cost. They are called as a stream calls them (items checked once, then
+    ``predict_checked`` / ``learn_checked``, then ``ceiling_value()`` per label), without the
+    hint that lets a stream skip a vote that still stands."""
     space = learners.FeatureSpace(SPACE_SIZE)
     panel = [
         learners.make(
@@ -537,13 +539,13 @@ def measure_panel(source: Items, figures: Figures) -> None:
     t0 = time.process_time()
     for enc, _ in rest:
         for learner in panel:
-            learner.predict(enc)
+            learner.predict_checked(enc)
     figures.panel["predict"] = (time.process_time() - t0) / len(rest)
     t0 = time.process_time()
     for enc, y in rest:
         for learner in panel:
-            learner.learn(enc, y)
-            learner.ceiling()
+            learner.learn_checked(enc, y)
+            learner.ceiling_value()
     figures.panel["label"] = (time.process_time() - t0) / len(rest)
 
 
@@ -800,8 +802,8 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
         f"({CONCURRENCY} for feedback), {BATCH_CONCURRENCY} for batches; each loop at most "
         f"{args.seconds:g} s. Server CPU: "
         "user + system time of the server process during the loop, per call or item. Panel "
-        "alone: the same six learners in this process on encoded items (learn, then read the "
-        "ceiling, per label), the floor under the service's cost per item. "
+        "alone: the same six learners in this process on encoded items (learn_checked, then "
+        "ceiling_value(), per label), the floor under the service's cost per item. "
         f"Panel: {', '.join(p['name'] for p in PANEL)} on an open space of {SPACE_SIZE:,} flags "
         f"(about {FLAGS_PER_ITEM + 1} on per item). Durability FULL (the default): a write "
         f"answers after its commit's fsync. {os.cpu_count()} cores, Python "
