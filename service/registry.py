@@ -9,14 +9,14 @@ Holding the lock from apply to append makes the log order the apply order.
 Requests that change nothing (a retried predict or label) are not logged; their future waits for
 everything queued before them, so a retry never answers before the original is durable.
 
-A background sweeper expires waiting predictions and snapshots streams that changed. A stream
-is also snapshotted on the write path after ``snapshot_every_events`` events or
-``snapshot_every_items`` items, whichever comes first, but not before the items logged since its
-last snapshot reach ``snapshot_size_ratio`` times the ids the snapshot holds (its waiting
-predictions and remembered ids). A snapshot costs time in proportion to those ids, so the
-waiting keeps its cost per item bounded however many predictions wait for their labels; and
-the log after a snapshot (the replay after a crash) is then never much longer than the
-snapshot itself.
+A background sweeper expires waiting predictions and snapshots streams that changed a while ago
+(``snapshot_interval_seconds``). A stream is also snapshotted on the write path after
+``snapshot_every_events`` events or ``snapshot_every_items`` items, whichever comes first. Either
+way, not before the items logged since its last snapshot reach ``snapshot_size_ratio`` times the
+ids the snapshot holds (its waiting predictions and remembered ids). A snapshot costs time in
+proportion to those ids, so the waiting keeps its cost per item bounded however many
+predictions wait for their labels; and the log after a snapshot (the replay after a crash) is
+then never much longer than the snapshot itself.
 """
 
 from __future__ import annotations
@@ -144,6 +144,7 @@ class Registry:
                 if (
                     stream.unsnapshotted
                     and now - stream.snapshot_t >= self.settings.snapshot_interval_seconds
+                    and self._worth_snapshot(stream)
                     and self.store.failed is None
                 ):
                     self._snapshot(stream)
@@ -164,8 +165,13 @@ class Registry:
             and logged < settings.snapshot_every_items
         ):
             return False
+        return self._worth_snapshot(stream)
+
+    def _worth_snapshot(self, stream: Stream) -> bool:
+        """Whether the items logged since the last snapshot reach ``snapshot_size_ratio`` times
+        the ids a snapshot would hold."""
         held = len(stream.pending) + len(stream.resolved)
-        return logged >= settings.snapshot_size_ratio * held
+        return stream.unsnapshotted_items >= self.settings.snapshot_size_ratio * held
 
     def _new_stream(self, config: dict[str, Any], t: float) -> Stream:
         return Stream(
@@ -531,10 +537,10 @@ def committed(future: Future[int]) -> None:
         raise Unavailable(str(exc), field="store", rule="a working store") from exc
 
 
-__all__ = ["Registry", "StoreFailed", "committed"]
-
-
 def _item_count(event: dict[str, Any]) -> int:
     """The items an event carries (predict, feedback, examples); 0 for the others."""
     items = event.get("items")
     return len(items) if isinstance(items, list) else 0
+
+
+__all__ = ["Registry", "StoreFailed", "committed"]

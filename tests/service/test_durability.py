@@ -247,19 +247,20 @@ def test_snapshots_shorten_the_log(make_app: MakeApp, clock: Clock, data_dir: Pa
 
 
 def test_a_snapshot_waits_until_the_log_since_the_last_is_as_long_as_itself(
-    make_app: MakeApp, data_dir: Path
+    make_app: MakeApp, clock: Clock, data_dir: Path
 ) -> None:
     """With predictions waiting, a snapshot holds them all; it is written once the items logged
     since the last snapshot reach as many (snapshot_size_ratio = 1), not every N events, so its
-    cost per logged item stays bounded; batches count by their items."""
+    cost per logged item stays bounded; batches count by their items. The sweeper's snapshot
+    after the interval waits the same way."""
     app = make_app(
         snapshot_every_events=4,
         snapshot_every_items=10**6,
         snapshot_size_ratio=1,
-        snapshot_interval_seconds=3600,
+        snapshot_interval_seconds=60,
     )
     with running(app) as service:
-        create(service, "north")
+        create(service, "north", label_wait_seconds=10**6)
         conn = sqlite3.connect(data_dir / FILE_NAME)
 
         def logged() -> int:
@@ -278,6 +279,9 @@ def test_a_snapshot_waits_until_the_log_since_the_last_is_as_long_as_itself(
         # Four single predictions: 4 events, but 4 items < 34 waiting: no snapshot yet.
         for j in range(4):
             service.post("/v1/streams/north/predict", json={"id": f"b{j}", "features": ["f2"]})
+        assert logged() == 4
+        clock.advance(61)
+        service.registry.sweep()
         assert logged() == 4
         # 20 labels: 24 items since the snapshot < 34 ids held (14 waiting, 20 remembered).
         labels = [{"id": f"a{k}-{j}", "label": 1} for k in range(3) for j in range(10)]
