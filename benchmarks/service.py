@@ -48,7 +48,6 @@ import json
 import os
 import platform
 import signal
-import socket
 import sqlite3
 import subprocess
 import sys
@@ -67,6 +66,7 @@ from rich.console import Console
 from rich.table import Table
 
 import learners
+from service.demo import free_port  # a free port on 127.0.0.1, the HOST here
 from service.streams import Stream
 
 HOST = "127.0.0.1"  # the only address this benchmark talks to
@@ -130,12 +130,6 @@ def encode(body: Any) -> bytes:
 
 
 # -- servers -----------------------------------------------------------------------------------
-
-
-def free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
-        sock.bind((HOST, 0))
-        return int(sock.getsockname()[1])
 
 
 def service_env(args: argparse.Namespace, **extra: str) -> dict[str, str]:
@@ -325,8 +319,8 @@ class Figures:
     bare: dict[int, Loop] = field(default_factory=dict)  # calls in flight -> loop
     predict: dict[int, Loop] = field(default_factory=dict)
     feedback: Loop | None = None
-    commit_seconds: tuple[float, float] = (float("nan"), float("nan"))  # one durable commit:
-    # median, mean
+    # One durable SQLite commit: (median, mean) seconds.
+    commit_seconds: tuple[float, float] = (float("nan"), float("nan"))
     batch: dict[str, tuple[int, Loop]] = field(default_factory=dict)  # items sent, the loop
     memory: dict[str, float] = field(default_factory=dict)
     panel: dict[str, float] = field(default_factory=dict)  # seconds per item, in process
@@ -423,10 +417,9 @@ def measure_service(
         create_stream(port, STREAM)
         base = f"/v1/streams/{STREAM}"
 
-        def timed(kind: str, sent: list[bytes], threads: int) -> Loop:
-            loop = run_loop(
-                port, f"{base}/{kind}", sent, threads=threads, seconds=args.seconds, pid=srv.pid
-            )
+        def timed(kind: str, sent: list[bytes], threads: int, stream: str = STREAM) -> Loop:
+            path = f"/v1/streams/{stream}/{kind}"
+            loop = run_loop(port, path, sent, threads=threads, seconds=args.seconds, pid=srv.pid)
             return checked(loop, kind)
 
         warm = bodies[: args.warmup]
@@ -443,17 +436,7 @@ def measure_service(
             create_stream(port, name)
             path = f"/v1/streams/{name}/predict"
             checked(run_loop(port, path, warm, threads=level, seconds=10), "warm-up")
-            figures.predict[level] = loop = checked(
-                run_loop(
-                    port,
-                    path,
-                    bodies[args.warmup :],
-                    threads=level,
-                    seconds=args.seconds,
-                    pid=srv.pid,
-                ),
-                "predict",
-            )
+            figures.predict[level] = loop = timed("predict", bodies[args.warmup :], level, name)
             console.print(f"  single predict, {level} in flight: {loop.calls} calls")
         loop = first
 

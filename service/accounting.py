@@ -167,9 +167,6 @@ class Seat:
         if changed:
             self._point(t, value)
         count = learner.updates if learner.counts == "updates" else learner.mistakes
-        if not learner.contradicted and (value is None or count < self.near * value):
-            self.alerted = None  # within: what standing() says here (near <= 1), read cheaply
-            return None
         state = standing(count, value, learner.contradicted, self.near)
         if state != "exceeded" and state != "contradicted":
             self.alerted = None

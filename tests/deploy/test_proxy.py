@@ -25,6 +25,7 @@ import pytest
 import uvicorn
 
 from service.client import LedgerClient
+from service.demo import free_port
 from tests.deploy.tools import DEPLOY
 
 CONF = DEPLOY / "proxy" / "mistake-ledger.conf"
@@ -105,12 +106,6 @@ class Shard:
     def stop(self) -> None:
         self.server.shutdown()
         self.server.server_close()
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
 
 
 class Proxy:

@@ -8,13 +8,18 @@ portal instead: the same requests, no sockets.)
 from __future__ import annotations
 
 import asyncio
+import threading
+import time
 from collections.abc import Iterator
 from contextlib import AbstractContextManager, contextmanager
 from typing import Any
 
 import httpx
+import uvicorn
 from anyio.from_thread import BlockingPortal, start_blocking_portal
 from fastapi import FastAPI
+
+from service.demo import free_port
 
 
 class Clock:
@@ -85,3 +90,23 @@ def running(app: FastAPI, token: str | None = None) -> Iterator[Running]:
         )
         with lifespan:
             yield Running(app, portal, token)
+
+
+@contextmanager
+def served(app: FastAPI) -> Iterator[str]:
+    """``app`` served by uvicorn on a free loopback port, in a thread; yields its base URL."""
+    port = free_port()
+    server = uvicorn.Server(
+        uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning", lifespan="on")
+    )
+    thread = threading.Thread(target=server.run, daemon=True)
+    thread.start()
+    deadline = time.monotonic() + 20
+    while not server.started:
+        assert time.monotonic() < deadline, "the service did not start"
+        time.sleep(0.02)
+    try:
+        yield f"http://127.0.0.1:{port}"
+    finally:
+        server.should_exit = True
+        thread.join(timeout=20)

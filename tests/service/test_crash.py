@@ -43,7 +43,6 @@ import random
 import select
 import shutil
 import signal
-import socket
 import sqlite3
 import subprocess
 import sys
@@ -59,6 +58,7 @@ import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
 import learners
+from service.demo import free_port
 from service.store import FILE_NAME
 
 CLIENTS = 4
@@ -90,12 +90,6 @@ def features_key(features: Any) -> str:
 
 
 # -- the server process -----------------------------------------------------------------------
-
-
-def free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return int(probe.getsockname()[1])
 
 
 def serve_command() -> str:

@@ -13,16 +13,10 @@ from pathlib import Path
 
 import pytest
 
-from service.demo import change_mark, read_catalogue
+from service.demo import change_mark, free_port, read_catalogue
 from service.replay import load_records
 
 ROOT = Path(__file__).resolve().parents[2]
-
-
-def free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return int(probe.getsockname()[1])
 
 
 @pytest.mark.slow

@@ -8,16 +8,12 @@ every learner's updates and served mistakes must agree.
 from __future__ import annotations
 
 import json
-import socket
-import threading
-import time
 from collections.abc import Iterator
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Any
 
 import pytest
-import uvicorn
 from click.testing import CliRunner
 from rich.console import Console
 
@@ -33,6 +29,7 @@ from service.replay import (
     plan,
     prepare_stream,
 )
+from tests.service.harness import served
 
 ROOT = Path(__file__).resolve().parents[2]
 SCENARIO = ROOT / "demo_data"
@@ -41,12 +38,6 @@ ENTRIES = {e["stream"]: e for e in CATALOGUE["streams"]}
 
 
 # -- a real service on loopback ---------------------------------------------------------------
-
-
-def free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return int(probe.getsockname()[1])
 
 
 @pytest.fixture(scope="module")
@@ -59,19 +50,8 @@ def service_url(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     data = tmp_path_factory.mktemp("replay-store")
     settings = Settings.from_env({}, data_dir=data, durability="normal")
     app = create_app(settings, registry=CollectorRegistry())
-    port = free_port()
-    server = uvicorn.Server(
-        uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning", lifespan="on")
-    )
-    thread = threading.Thread(target=server.run, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        assert time.monotonic() < deadline, "the service did not start"
-        time.sleep(0.05)
-    yield f"http://127.0.0.1:{port}"
-    server.should_exit = True
-    thread.join(timeout=20)
+    with served(app) as url:
+        yield url
 
 
 def subset(stream: str, count: int, out: Path) -> Path:

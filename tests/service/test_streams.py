@@ -15,6 +15,7 @@ from typing import Any
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+import learners
 from service.streams import Stream, fingerprint
 
 NAMES = st.text(min_size=1, max_size=12)
@@ -154,8 +155,6 @@ def test_the_panel_learns_as_each_learner_would_alone(steps: list[tuple[str, int
     same counts and the same learned state, and the same per-label outcomes."""
     # The reference is the learners' own public protocol (learners.base: predict and learn),
     # with DESIGN.md's accounting: each label's "wrong" is the vote cast at predict time.
-    import learners
-
     stream = panel_stream()
     space = learners.FeatureSpace(6)
     alone = [learners.make(spec["kind"], features=space, **spec["params"]) for spec in SKIP_PANEL]

@@ -13,20 +13,14 @@ import copy
 import json
 import random
 import re
-import socket
 import sqlite3
-import threading
-import time
-from collections.abc import Iterator
-from contextlib import closing, contextmanager
+from contextlib import closing
 from pathlib import Path
 from typing import Any
 
 import httpx
 import pytest
-import uvicorn
 from click.testing import CliRunner
-from fastapi import FastAPI
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from prometheus_client import CollectorRegistry
@@ -36,7 +30,7 @@ from service.settings import Settings
 from service.store import FILE_NAME
 from service.transfer_checks import FORMAT, HEADER
 from tests.service.conftest import MakeApp
-from tests.service.harness import Clock, Running, running
+from tests.service.harness import Clock, Running, running, served
 
 STREAM = "lockers-moving"
 FLAGS = [f"f{i}" for i in range(8)]
@@ -590,32 +584,6 @@ def test_a_changed_document_is_refused_or_makes_a_working_stream(
 
 
 # -- the command line, against two services on loopback ---------------------------------------
-
-
-def free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return int(probe.getsockname()[1])
-
-
-@contextmanager
-def served(app: FastAPI) -> Iterator[str]:
-    """``app`` served by uvicorn on a loopback port, in a thread."""
-    port = free_port()
-    server = uvicorn.Server(
-        uvicorn.Config(app, host="127.0.0.1", port=port, log_level="warning", lifespan="on")
-    )
-    thread = threading.Thread(target=server.run, daemon=True)
-    thread.start()
-    deadline = time.monotonic() + 20
-    while not server.started:
-        assert time.monotonic() < deadline, "the service did not start"
-        time.sleep(0.02)
-    try:
-        yield f"http://127.0.0.1:{port}"
-    finally:
-        server.should_exit = True
-        thread.join(timeout=20)
 
 
 @pytest.mark.slow
