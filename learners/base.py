@@ -35,9 +35,19 @@ from typing import Any, ClassVar, Literal
 import numpy as np
 
 from learners.errors import LabelError, LearnerError, ParameterError, StateError, shown
-from learners.features import Encoded, FeatureSpace, Item
+from learners.features import Encoded, FeatureSpace, Item, Rows
 
 STATE_VERSION = 1
+
+# Items :meth:`Learner.skim` screens at once: it starts at SKIM_FIRST, doubles up to SKIM_MOST
+# while whole windows pass and falls back to twice where the last one stopped (at least
+# SKIM_LEAST). Speed only: what a learner learns never depends on it.
+SKIM_FIRST, SKIM_LEAST, SKIM_MOST = 64, 16, 4096
+# Rounding slack of a screened sum of ``n`` terms whose magnitudes add up to ``m``: ``(n + 4) *
+# SLACK * m`` is far above the largest gap between two summation orders of the same terms
+# (``(n - 1) * eps * m`` to first order), so an item screened as clear of its threshold is clear
+# of it however the learner's own step adds the terms.
+SLACK = 8.0 * float(np.finfo(np.float64).eps)
 
 Standing = Literal["within", "near", "exceeded", "contradicted"]
 Counts = Literal["updates", "mistakes"]
@@ -175,6 +185,7 @@ class Learner(ABC):
         self.mistakes = 0
         self.updates = 0
         self.contradicted = False
+        self._reach = SKIM_FIRST  # items skim() screens at once (speed only; not state)
 
     # -- what a subclass provides ------------------------------------------------------------
 
@@ -194,6 +205,22 @@ class Learner(ABC):
         """Learn a label the hypothesis is known to predict (see :meth:`learn_checked`); return
         whether it updated. The default learns as usual; a learner overrides it to skip work."""
         return self._learn(enc, y)[1]
+
+    def skims(self) -> bool:
+        """True when :meth:`skim` can pass items at all (a learner that screens overrides it)."""
+        return False
+
+    def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
+        """How many of the items ``a, a + 1, ...`` (before ``b``) of ``rows``, from the first on,
+        the hypothesis as it is now certainly predicts right and would not update on. Must not
+        change anything; may return fewer than it could (never more)."""
+        return 0
+
+    def _absorb(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> None:
+        """Learn the items ``a .. b - 1``, which :meth:`_screen` passed: whatever a label the
+        hypothesis gets right and keeps still changes (R, every rule's mistakes). Default:
+        nothing."""
+        return None
 
     @abstractmethod
     def ceiling(self) -> Ceiling:
@@ -266,6 +293,35 @@ class Learner(ABC):
         self.updates += updated
         return wrong, updated
 
+    def skim(self, rows: Rows, ys: np.ndarray, start: int, stop: int) -> int:
+        """Learn the items ``start, start + 1, ...`` (before ``stop``) of ``rows``, labelled
+        ``ys``, for as long as each is one the hypothesis predicts right and would not update on;
+        return the first item not learned (``stop`` when all were).
+
+        What it learns is exactly what :meth:`learn_checked` would, item by item (each of them
+        would return (False, False)); it only screens many items at once. Over the items it
+        passes the hypothesis stands still, the ceiling's value does not fall and
+        :attr:`contradicted` does not change, so a caller may read the standing once after them
+        instead of after each. The items must be encoded and checked already, as for
+        :meth:`learn_checked`.
+        """
+        k = start
+        if k < stop and self.skims():
+            reach = self._reach
+            while k < stop:
+                end = min(stop, k + reach)
+                passed = self._screen(rows, ys, k, end)
+                k += passed
+                if k < end:
+                    reach = max(SKIM_LEAST, 2 * passed)
+                    break
+                reach = min(SKIM_MOST, 2 * reach)
+            self._reach = reach
+            if k > start:
+                self._absorb(rows, ys, start, k)
+                self.examples += k - start
+        return k
+
     @property
     def counted(self) -> int:
         """The count the ceiling bounds (updates or mistakes, as :attr:`counts` says)."""
@@ -335,7 +391,14 @@ def ensure_length(array: Any, length: int, fill: float) -> Any:
     return grown
 
 
+def first_false(passed: np.ndarray) -> int:
+    """The index of the first False in a boolean array (its length when there is none)."""
+    misses = np.flatnonzero(~passed)
+    return int(misses[0]) if len(misses) else len(passed)
+
+
 __all__ = [
+    "SLACK",
     "Ceiling",
     "Counts",
     "Learner",
@@ -344,5 +407,6 @@ __all__ = [
     "check_label",
     "check_number",
     "ensure_length",
+    "first_false",
     "standing",
 ]

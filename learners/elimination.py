@@ -25,7 +25,8 @@ Mistake ceiling
 Cost
     The hypothesis is kept as the set of flags still required (and, with negations, the set of
     flags whose negation is crossed out), so memory follows the flags seen in positive items, never
-    ``n``. Predict and learn cost O(active flags).
+    ``n``. Predict and learn cost O(active flags). :meth:`skim` tests many items at once against
+    masks of the two sets, rebuilt in O(flags seen) after an update.
 
 References
     L. G. Valiant, "A theory of the learnable", Communications of the ACM 27(11), 1984.
@@ -36,9 +37,11 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from learners.base import Ceiling, Learner
+import numpy as np
+
+from learners.base import Ceiling, Learner, first_false
 from learners.errors import ParameterError, shown
-from learners.features import Encoded, FeatureSpace
+from learners.features import Encoded, FeatureSpace, Rows
 
 SOURCE = 'Valiant 1984, "A theory of the learnable", CACM 27(11); count from the standard proof'
 
@@ -64,6 +67,9 @@ class Elimination(Learner):
         self.required: set[int] | None = None
         # With negations: flags whose negated literal is crossed out (seen true in a positive).
         self.allowed: set[int] = set()
+        # For skim(): per space index, 1 where the flag is required / where its negation is still
+        # in. Built from the sets on first use, then kept in step by _learn.
+        self._masks: tuple[np.ndarray, np.ndarray | None] | None = None
 
     def params(self) -> dict[str, Any]:
         return {"negations": self.negations}
@@ -93,11 +99,53 @@ class Elimination(Learner):
             return True, False
         if self.required is None:
             self.required = set(enc.on)
-        else:
+            self._masks = None
+        elif self._masks is None:
             self.required &= enc.on
+        else:
+            required, negated = self._mask()  # grown to every name, the item's included
+            dropped = self.required - enc.on
+            self.required -= dropped
+            required[list(dropped)] = 0
+            if negated is not None:
+                negated[enc.keys] = 0
         if self.negations:
             self.allowed |= enc.on
         return True, True
+
+    def skims(self) -> bool:
+        return self.required is not None
+
+    def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
+        # The same test as _predict, as counts: every required flag on, and (with negations)
+        # no flag on outside the allowed ones. Integer counts: no rounding to allow for.
+        required, negated = self._mask()
+        lo, hi = rows.span(a, b)
+        keys = rows.keys[lo:hi]
+        assert self.required is not None  # skims() says so
+        predicted = rows.sums(required[keys], a, b) == len(self.required)
+        if negated is not None:
+            predicted &= rows.sums(negated[keys], a, b) == 0
+        return first_false(predicted == (ys[a:b] == 1))
+
+    def _mask(self) -> tuple[np.ndarray, np.ndarray | None]:
+        n = len(self.space.names)
+        masks = self._masks
+        if masks is None:
+            required = np.zeros(n, dtype=np.int8)
+            required[list(self.required or ())] = 1
+            negated = None
+            if self.negations:
+                negated = np.ones(n, dtype=np.int8)
+                negated[list(self.allowed)] = 0
+            masks = self._masks = (required, negated)
+        elif len(masks[0]) < n:  # names admitted since: none required, none allowed
+            required, negated = masks
+            required = np.concatenate((required, np.zeros(n - len(required), dtype=np.int8)))
+            if negated is not None:
+                negated = np.concatenate((negated, np.ones(n - len(negated), dtype=np.int8)))
+            masks = self._masks = (required, negated)
+        return masks
 
     def size(self) -> int | None:
         """How many literals the hypothesis holds (None: all of them, before any update)."""
@@ -150,3 +198,4 @@ class Elimination(Learner):
         required = learned["required"]
         self.required = None if required is None else {int(i) for i in required}
         self.allowed = {int(i) for i in learned["allowed"]}
+        self._masks = None

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Mapping, Sequence
+from itertools import chain
 from typing import Any
 
 import numpy as np
@@ -79,6 +80,45 @@ class Encoded:
     def sq_norm(self) -> float:
         """The squared Euclidean norm of the item."""
         return float(len(self.keys)) if self.vals is None else float(self.val @ self.val)
+
+
+class Rows:
+    """Encoded items laid end to end, for learners that screen many items at once.
+
+    Item ``k``'s indices are ``keys[starts[k]:starts[k + 1]]`` with the values ``vals`` there
+    (None when every value of every item is 1); ``owner`` gives each entry's item and ``sizes``
+    each item's count of entries. Built once per batch and shared by a panel, like
+    :class:`Encoded`.
+    """
+
+    __slots__ = ("encs", "keys", "vals", "starts", "owner", "sizes")
+
+    def __init__(self, encs: Sequence[Encoded]) -> None:
+        n = len(encs)
+        self.encs = encs
+        self.sizes = np.fromiter((len(e.keys) for e in encs), dtype=np.int64, count=n)
+        self.starts = np.zeros(n + 1, dtype=np.int64)
+        np.cumsum(self.sizes, out=self.starts[1:])
+        total = int(self.starts[-1])
+        self.keys = np.fromiter(chain.from_iterable(e.keys for e in encs), np.int64, total)
+        if all(e.binary for e in encs):
+            self.vals: np.ndarray | None = None
+        else:
+            parts = (e.vals if e.vals is not None else [1.0] * len(e.keys) for e in encs)
+            self.vals = np.fromiter(chain.from_iterable(parts), np.float64, total)
+        self.owner = np.repeat(np.arange(n, dtype=np.int64), self.sizes)
+
+    def __len__(self) -> int:
+        return len(self.encs)
+
+    def span(self, a: int, b: int) -> tuple[int, int]:
+        """The entries of items ``a .. b - 1``."""
+        return int(self.starts[a]), int(self.starts[b])
+
+    def sums(self, values: np.ndarray, a: int, b: int) -> np.ndarray:
+        """Per item of ``a .. b - 1``, the sum of ``values`` (one per entry of those items)."""
+        lo, hi = self.span(a, b)
+        return np.bincount(self.owner[lo:hi] - a, weights=values, minlength=b - a)
 
 
 class FeatureSpace:

@@ -13,7 +13,10 @@ What they share lives here, once:
 - the margin ceiling's shared shape, ``numerator / gamma^2`` with ``gamma`` the declared margin,
   and ``implied`` (``R`` always; ``max_margin`` when no margin is declared), ``R^2`` being the
   largest squared augmented norm ``|x|^2 + c^2`` learned so far;
-- the learned state ``{"w": {"idx", "val"}, "b", "r2"}`` and the checks that read it back.
+- the learned state ``{"w": {"idx", "val"}, "b", "r2"}`` and the checks that read it back;
+- :meth:`Learner.skim`'s screen: an item passes when ``s (w . x + b c)`` clears the point below
+  which the learner would update (``clear_above``) by more than rounding can move the score, and
+  learning it then only raises ``R^2``.
 
 A learner module keeps its docstring, parameters, update rule and ceiling text; it supplies the
 ceiling's numerator and may extend the grow, the state and the restore with arrays of its own.
@@ -31,9 +34,9 @@ from typing import Any
 
 import numpy as np
 
-from learners.base import Learner, check_number, ensure_length
+from learners.base import SLACK, Learner, check_number, ensure_length, first_false
 from learners.errors import StateError, shown
-from learners.features import Encoded, FeatureSpace
+from learners.features import Encoded, FeatureSpace, Rows
 
 MARGIN_ASSUMPTION = (
     "some unit weight vector (bias included) has s (u . x) >= gamma on every labelled "
@@ -54,6 +57,9 @@ class LinearLearner(Learner):
         self._w = np.zeros(0)
         self._b = 0.0
         self._r2 = 0.0
+        # skim() passes an item whose s (w . x + b c) is above this (by more than rounding can
+        # move it): the learner neither errs nor updates there. None: it screens nothing.
+        self.clear_above: float | None = None
 
     def _check_bias_and_margin(self, bias: Any, margin: Any) -> None:
         """Validate and store ``bias`` (the constant feature's value) and the declared margin."""
@@ -74,6 +80,45 @@ class LinearLearner(Learner):
         if enc.binary:
             return float(self._w[enc.idx].sum()) + self._b * self._c
         return float(self._w[enc.idx].dot(enc.val)) + self._b * self._c
+
+    # -- many items at once (Learner.skim) ------------------------------------------------------
+
+    def skims(self) -> bool:
+        return self.clear_above is not None
+
+    def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
+        if len(self._w) < len(self.space.names):
+            self._grow()
+        lo, hi = rows.span(a, b)
+        terms = self._w[rows.keys[lo:hi]]
+        if rows.vals is not None:
+            terms = terms * rows.vals[lo:hi]
+        bias = self._b * self._c
+        score = rows.sums(terms, a, b) + bias
+        magnitude = rows.sums(np.abs(terms), a, b) + abs(bias)
+        signed = np.where(ys[a:b] == 1, score, -score)
+        assert self.clear_above is not None  # skims() says so
+        slack = (rows.sizes[a:b] + 4) * SLACK * (magnitude + abs(self.clear_above))
+        return first_false(signed > self.clear_above + slack)
+
+    def _absorb(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> None:
+        # What a passed label still changes: R^2, the largest |x|^2 + c^2 learned, computed for
+        # the item that sets it exactly as _learn computes it.
+        c2 = self._c * self._c
+        if rows.vals is None:  # flags only: |x|^2 is the count, as in _learn
+            top = float(rows.sizes[a:b].max()) + c2
+            if top > self._r2:
+                self._r2 = top
+            return
+        lo, hi = rows.span(a, b)
+        vals = rows.vals[lo:hi]
+        sq = rows.sums(vals * vals, a, b) + c2
+        near = sq * (1.0 + (rows.sizes[a:b] + 4) * SLACK) >= self._r2
+        for k in (np.flatnonzero(near) + a).tolist():
+            enc = rows.encs[k]
+            exact = len(enc.idx) + c2 if enc.binary else float(enc.val.dot(enc.val)) + c2
+            if exact > self._r2:
+                self._r2 = exact
 
     @abstractmethod
     def weights(self) -> tuple[dict[str, float], float]:

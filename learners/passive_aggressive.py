@@ -113,6 +113,7 @@ class PassiveAggressive(LinearLearner):
             )
         self._check_bias_and_margin(bias, margin)
         self._C = self.aggressiveness or math.inf
+        self.clear_above = 1.0  # no hinge loss from s (w . x + b c) >= 1 on: no error, no step
 
     def params(self) -> dict[str, Any]:
         return {

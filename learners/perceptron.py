@@ -132,6 +132,8 @@ class Perceptron(LinearLearner):
         self._threshold = self.tau or 0.0
         self._step = self.eta or 1.0
         self._averaged = self.variant == "averaged"
+        if self.changes_only_on_update:  # averaged and voted serve another score: not screened
+            self.clear_above = self._threshold
         self._voted = self.variant == "voted"
         # Learned state beyond the linear core's weights, bias weight and R^2.
         # averaged: U = sum over updates of t * (step s x), and its bias part.

@@ -116,6 +116,11 @@ class SlotMap:
 
     def slots(self, idx: np.ndarray) -> np.ndarray:
         """The slots of the given space indices that some rule mentions (others are dropped)."""
+        found = self.lookup(idx)
+        return found[found >= 0]
+
+    def lookup(self, idx: np.ndarray) -> np.ndarray:
+        """The slot of each given space index, -1 where no rule mentions it."""
         size = len(self.space)
         if size > self.known:
             self.at = ensure_length(self.at, size, -1)
@@ -123,8 +128,7 @@ class SlotMap:
             for j in range(self.known, size):
                 self.at[j] = slot.get(names[j], -1)
             self.known = size
-        found = self.at[idx]
-        return found[found >= 0]
+        return self.at[idx]
 
 
 class ScaledWeights:

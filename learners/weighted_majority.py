@@ -75,9 +75,9 @@ from typing import Any
 
 import numpy as np
 
-from learners.base import Ceiling, Learner, check_number, ensure_length
+from learners.base import SLACK, Ceiling, Learner, check_number, ensure_length, first_false
 from learners.errors import ParameterError, StateError, shown
-from learners.features import Encoded, FeatureSpace
+from learners.features import Encoded, FeatureSpace, Rows
 from learners.rules import (
     ScaledWeights,
     SlotMap,
@@ -93,6 +93,9 @@ SOURCE = (
 )
 _NORMAL_EXPONENT = 64  # renormalise when the total weight leaves 2^-64 .. 2^64
 _sum = np.add.reduce  # what ndarray.sum calls, without its Python wrapper: the same sum
+# skim() counts the labels it passes in bulk (then rebuilds the spread of D, O(flags stored))
+# unless the flags stored outnumber their entries by this much plus BULK_FLOOR.
+BULK_RATIO, BULK_FLOOR = 8, 65_536
 
 
 class WeightedMajority(Learner):
@@ -257,6 +260,67 @@ class WeightedMajority(Learner):
         self._count_label(self._slots(enc), y)
         self._note_contradiction()
         return False
+
+    # -- many items at once (Learner.skim) ----------------------------------------------------
+
+    def skims(self) -> bool:
+        # beta = 0: a label the master gets right may still empty the version space, which
+        # must be seen at that label; once it is empty, nothing more changes it.
+        return self.beta > 0.0 or self.contradicted
+
+    def _rows_slots(self, rows: Rows, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+        """The slots of the entries of items ``a .. b - 1`` and the item (from ``a``) of each."""
+        lo, hi = rows.span(a, b)
+        keys, owner = rows.keys[lo:hi], rows.owner[lo:hi] - a
+        if self._map is not None:
+            found = self._map.lookup(keys)
+            kept = found >= 0
+            return found[kept], owner[kept]
+        seen = len(self.space.names)
+        if len(self._pos.rel) < seen or len(self._neg.rel) < seen:
+            self._pos.grow(seen)  # as _slots does
+            self._neg.grow(seen)
+        return keys, owner
+
+    def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
+        # _tally's two votes for many items at once; an item passes when the master predicts
+        # its label by more than rounding can move the votes (every weight is >= 0, so no
+        # partial sum exceeds the total weight).
+        slots, owner = self._rows_slots(rows, a, b)
+        pos, neg = self._pos, self._neg
+        on_pos = pos.scale * np.bincount(owner, weights=pos.rel[slots], minlength=b - a)
+        on_neg = neg.scale * np.bincount(owner, weights=neg.rel[slots], minlength=b - a)
+        pos_total, neg_total = pos.scale * pos.total, neg.scale * neg.total
+        ones = on_pos + (neg_total - on_neg)
+        zeros = (pos_total - on_pos) + on_neg
+        slack = (rows.sizes[a:b] + 4) * SLACK * (pos_total + neg_total)
+        right = (ones > zeros) == (ys[a:b] == 1)
+        return first_false(right & (np.abs(ones - zeros) > slack))
+
+    def _absorb(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> None:
+        # The weights stay (no master mistake); every rule's mistakes move, as _count_label
+        # moves them label by label: in bulk when the flags stored are few enough.
+        slots, owner = self._rows_slots(rows, a, b)
+        d = self._d
+        if self._map is None and len(d) < len(self.space.names):
+            d = self._d = ensure_length(d, len(self.space.names), 0)
+            self._on1 = ensure_length(self._on1, len(self.space.names), 0)
+            if self._spread is not None:
+                self._spread.values = d
+        if len(d) > BULK_RATIO * len(slots) + BULK_FLOOR:
+            for k in range(a, b):
+                self._count_label(self._slots(rows.encs[k]), int(ys[k]))
+            return
+        labels = ys[a:b].astype(np.int64)
+        at = labels[owner]
+        size = len(d)
+        d += np.bincount(slots, weights=1 - 2 * at, minlength=size).astype(np.int64)
+        self._on1 += np.bincount(slots[at == 1], minlength=size)
+        ones = int(labels.sum())
+        self.labels1 += ones
+        self.labels0 += b - a - ones
+        if self._spread is not None:
+            self._spread = Spread(d, live=True)  # as _restore builds it: from D alone
 
     def _count_label(self, slots: np.ndarray, y: int) -> None:
         """Every rule's mistakes after one more label: the balances ``D`` of the item's flags,

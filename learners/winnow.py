@@ -89,9 +89,9 @@ from typing import Any, NoReturn
 
 import numpy as np
 
-from learners.base import Ceiling, Learner, check_choice, check_number
+from learners.base import SLACK, Ceiling, Learner, check_choice, check_number, first_false
 from learners.errors import FeatureError, StateError
-from learners.features import Encoded, FeatureSpace
+from learners.features import Encoded, FeatureSpace, Rows
 from learners.rules import ScaledWeights
 
 VARIANTS = ("winnow2", "winnow1", "balanced")
@@ -233,6 +233,35 @@ class Winnow(Learner):
         if not enc.binary:
             self.fractional = True
         return True, True
+
+    def skims(self) -> bool:
+        return True
+
+    def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
+        # _tally's score for many items at once; an item passes when it fires as wanted and its
+        # score is clear of theta by more than rounding can move it.
+        seen = len(self.space.names)
+        lo, hi = rows.span(a, b)
+        keys = rows.keys[lo:hi]
+        vals = None if rows.vals is None else rows.vals[lo:hi]
+        score = np.zeros(b - a)
+        magnitude = np.zeros(b - a)
+        for weights, sign in ((self._w, 1.0), (self._against, -1.0)):
+            if weights is None:
+                continue
+            weights.grow(seen)
+            terms = weights.rel[keys] if vals is None else weights.rel[keys] * vals
+            part = rows.sums(terms, a, b)  # weights and values are >= 0: also its magnitude
+            if self.complement:
+                score += sign * weights.scale * (weights.total - part)
+                magnitude += weights.scale * (weights.total + part)
+            else:
+                score += sign * weights.scale * part
+                magnitude += weights.scale * part
+        fires = score > self.theta
+        wanted = ys[a:b] == (0 if self.complement else 1)
+        slack = (rows.sizes[a:b] + 4) * SLACK * (magnitude + self.theta)
+        return first_false((fires == wanted) & (np.abs(score - self.theta) > slack))
 
     def _factors(self, enc: Encoded, sign: int) -> tuple[float | np.ndarray, float]:
         """Factors (flags on the item, every other flag) for ``w_i *= alpha ** (sign z_i)``."""

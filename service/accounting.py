@@ -140,6 +140,17 @@ class Seat:
             self.served_mistakes += 1
             self.total_served += 1
 
+    def pass_votes(
+        self, count: int, vote_wrong: int, only_this: int, only_served: int, this_epoch: int
+    ) -> None:
+        """:meth:`observe_vote` for ``count`` labelled predictions at once, none of them a served
+        mistake (a wrong vote of this epoch), and the release of those of this epoch."""
+        self.compared += count
+        self.vote_wrong += vote_wrong
+        self.only_this_wrong += only_this
+        self.only_served_wrong += only_served
+        self.outstanding -= this_epoch
+
     def learn(self, item_id: str, enc: Any, y: int, right: bool = False) -> tuple[bool, bool]:
         """Let the learner learn one label; return (hypothesis was wrong, it updated).
         ``right``: it is known to predict the label (see ``Learner.learn_checked``)."""

@@ -24,9 +24,12 @@ import threading
 from collections import OrderedDict
 from collections.abc import Mapping, Sequence
 from json.encoder import encode_basestring_ascii as _quote  # what json.dumps uses
-from typing import Any
+from typing import Any, cast
+
+import numpy as np
 
 from learners import Encoded, FeatureSpace, Learner, LearnerError
+from learners.features import Rows
 from service.accounting import Seat, mcnemar_exact
 from service.errors import Conflict, InvalidInput
 
@@ -146,6 +149,49 @@ class Resolved:
         return cls(kind, at, fp, label, None if votes is None else tuple(votes), wrong, updated)
 
 
+class _Labelled:
+    """What :meth:`Stream._learn_many` shares with each learner's share of the work."""
+
+    __slots__ = (
+        "t",
+        "ids",
+        "encs",
+        "ys",
+        "labels",
+        "taken",
+        "rows",
+        "votes",
+        "epochs",
+        "served_wrong",
+        "wrong",
+        "updated",
+        "alerts",
+    )
+
+    def __init__(
+        self,
+        t: float,
+        ids: list[str],
+        encs: list[Encoded],
+        ys: list[int],
+        taken: list[Pending] | None,
+    ) -> None:
+        self.t = t
+        self.ids = ids
+        self.encs = encs
+        self.ys = ys
+        self.labels = np.array(ys, dtype=np.int8)
+        self.taken = taken
+        self.rows: Rows | None = None  # built when some learner skims
+        self.votes: np.ndarray | None = None  # item x learner, when the items were predicted
+        self.epochs: np.ndarray | None = None
+        self.served_wrong: np.ndarray | None = None
+        self.wrong = [0] * len(encs)  # per item, bit i: learner i was wrong
+        self.updated = [0] * len(encs)  # per item, bit i: learner i updated
+        # (item, learner, alert), put in the order item by item would raise them.
+        self.alerts: list[tuple[int, int, dict[str, Any]]] = []
+
+
 class Stream:
     """One stream's state; callers hold :attr:`lock` around every call (see ``registry``)."""
 
@@ -186,6 +232,9 @@ class Stream:
         # Not part of the replayed state: counted since this process started.
         self.volatile = {"duplicates": 0, "conflicts": 0}
         self.new_alerts: list[dict[str, Any]] = []
+        # Learn labelled batches by skimming (Learner.skim); False: one item at a time (the
+        # same ledger; kept for the tests that compare the two).
+        self.skim = True
         # Bookkeeping for the registry and the store.
         self.lock = threading.RLock()
         self.deleted = False
@@ -293,21 +342,41 @@ class Stream:
         """Apply labels in order; each gets a status: applied, duplicate, conflict, unknown,
         expired. Only ``applied`` changes anything."""
         t = self.advance(t)
-        out = []
-        for item_id, y in items:
+        out: list[dict[str, Any] | None] = []
+        applied: list[int] = []
+        taken: list[Pending] = []
+        later: list[int] = []  # ids met earlier in this batch: judged once that one is labelled
+        seen: set[str] = set()
+        for index, (item_id, y) in enumerate(items):
+            out.append(None)
+            if item_id in seen:
+                later.append(index)
+                continue
+            seen.add(item_id)
             p = self.pending.pop(item_id, None)
             if p is None:
-                out.append(self._not_pending(item_id, y))
+                out[index] = self._not_pending(item_id, y)
                 continue
-            wrong, updated = self._learn(t, item_id, p.enc, y, p)
-            delay = max(0.0, t - p.t)
-            self.delay_sum += delay
-            self.delay_buckets[_bucket(delay)] += 1
-            self.resolved[item_id] = Resolved("labelled", t, p.fp, y, p.votes, wrong, updated)
-            self.counts["labels"] += 1
-            out.append(self._outcome(item_id, "applied", wrong, updated))
+            applied.append(index)
+            taken.append(p)
+        if applied:
+            ids = [items[i][0] for i in applied]
+            ys = [items[i][1] for i in applied]
+            bits = self._learn_many(t, ids, [p.enc for p in taken], ys, taken)
+            resolved, counts = self.resolved, self.counts
+            for index, p, (wrong, updated) in zip(applied, taken, bits, strict=True):
+                item_id, y = items[index]
+                delay = max(0.0, t - p.t)
+                self.delay_sum += delay
+                self.delay_buckets[_bucket(delay)] += 1
+                resolved[item_id] = Resolved("labelled", t, p.fp, y, p.votes, wrong, updated)
+                counts["labels"] += 1
+                out[index] = self._outcome(item_id, "applied", wrong, updated)
+        for index in later:
+            out[index] = self._not_pending(*items[index])
         self.advance(t)  # keeps the remembered ids within their bound
-        return out
+        assert None not in out
+        return cast(list[dict[str, Any]], out)
 
     def apply_examples(
         self, t: float, items: Sequence[tuple[str, Features, int]]
@@ -343,9 +412,10 @@ class Stream:
                 raise ItemError(index, self._reused(item_id, "before"))
         encoded, _ = self._encode([items[i][1] for i in fresh], fresh, vote=False)
         done: dict[str, dict[str, Any]] = {}
-        for index, enc in zip(fresh, encoded, strict=True):
+        ids = [items[i][0] for i in fresh]
+        bits = self._learn_many(t, ids, encoded, [items[i][2] for i in fresh], None)
+        for index, (wrong, updated) in zip(fresh, bits, strict=True):
             item_id, _, y = items[index]
-            wrong, updated = self._learn(t, item_id, enc, y, None)
             self.resolved[item_id] = Resolved("example", t, prints[index], y, None, wrong, updated)
             self.counts["examples"] += 1
             done[item_id] = self._outcome(item_id, "applied", wrong, updated)
@@ -361,46 +431,115 @@ class Stream:
 
     # -- the accounting step ---------------------------------------------------------------
 
-    def _learn(
-        self, t: float, item_id: str, enc: Encoded, y: int, p: Pending | None
-    ) -> tuple[int, int]:
-        wrong_bits = updated_bits = 0
-        policy = self.policy
-        if p is None:  # a labelled example: "wrong" is the hypothesis at label time
-            for i, seat in enumerate(self.seats):
-                wrong, updated = seat.learn(item_id, enc, y)
-                if updated:
-                    seat.changed_at = self.counts["predictions"]
-                wrong_bits |= wrong << i
-                updated_bits |= updated << i
-                alert = seat.settle(t, updated, policy)
-                if alert is not None:
-                    self._alerted(alert)
-            return wrong_bits, updated_bits
-        votes, epochs = p.votes, p.epochs
-        served_wrong = votes[self.serve_index] != y
-        for i, seat in enumerate(self.seats):
-            same_epoch = epochs[i] == seat.epoch
-            if same_epoch:
-                seat.outstanding -= 1
-            vote_wrong = votes[i] != y
-            seat.observe_vote(vote_wrong, served_wrong, same_epoch)
-            wrong_bits |= vote_wrong << i
-            # Its vote was right and it has not updated since: it still predicts the label.
-            right = (
-                not vote_wrong
-                and same_epoch
-                and seat.changed_at <= p.seq
-                and seat.learner.changes_only_on_update
+    def _learn_many(
+        self,
+        t: float,
+        ids: list[str],
+        encs: list[Encoded],
+        ys: list[int],
+        taken: list[Pending] | None,
+    ) -> list[tuple[int, int]]:
+        """Every learner learns the labelled items in order; returns per item the bits of the
+        learners that were wrong and of those that updated.
+
+        ``taken``: the predictions the labels are for (None: labelled examples, never predicted;
+        "wrong" is then the hypothesis at label time, else the vote). Learner by learner (they
+        do not read each other), the items a learner certainly gets right and keeps are skimmed
+        (``Learner.skim``) and counted in bulk; the others, and every item whose vote this epoch
+        was wrong (a served mistake: a point of the history), go one by one. The ledger ends
+        exactly as it would item by item: over skimmed items nothing the standing reads moves
+        towards an alert, so one settle after them decides what one per item would.
+        """
+        batch = _Labelled(t, ids, encs, ys, taken)
+        if self.skim and any(seat.learner.skims() for seat in self.seats):
+            batch.rows = Rows(encs)
+        if taken is not None:
+            width = len(self.seats)
+            batch.votes = np.array([p.votes for p in taken], dtype=np.int8).reshape(-1, width)
+            batch.epochs = np.array([p.epochs for p in taken], dtype=np.int64).reshape(-1, width)
+            batch.served_wrong = batch.votes[:, self.serve_index] != batch.labels
+        for i in range(len(self.seats)):
+            self._seat_learns(i, batch)
+        for _, _, alert in sorted(batch.alerts, key=lambda found: found[:2]):
+            self._alerted(alert)  # in the order item by item would raise them
+        return list(zip(batch.wrong, batch.updated, strict=True))
+
+    def _seat_learns(self, i: int, batch: _Labelled) -> None:
+        """One learner's share of :meth:`_learn_many`."""
+        seat, n, t, policy = self.seats[i], len(batch.encs), batch.t, self.policy
+        ys, taken, wrong, updated = batch.ys, batch.taken, batch.wrong, batch.updated
+        bit = 1 << i
+        tallies: tuple[list[int], ...] = ()
+        if taken is not None:
+            assert batch.votes is not None and batch.served_wrong is not None
+            vote_wrong = batch.votes[:, i] != batch.labels
+            served_wrong = batch.served_wrong
+            for k in np.flatnonzero(vote_wrong).tolist():
+                wrong[k] |= bit
+            # Running counts, so a skimmed run's share is two lookups each.
+            tallies = tuple(
+                np.concatenate(([0], np.cumsum(flags))).tolist()
+                for flags in (vote_wrong, vote_wrong & ~served_wrong, served_wrong & ~vote_wrong)
             )
-            _, updated = seat.learn(item_id, enc, y, right)
-            if updated:
+        epoch = -1
+        same: list[bool] = []
+        stops: list[int] = [n]
+        k = f = 0
+        while k < n:
+            if seat.epoch != epoch:  # first, and after a restart: which votes are this epoch's
+                epoch = seat.epoch
+                f = 0
+                if taken is not None:
+                    assert batch.epochs is not None
+                    this_epoch = batch.epochs[:, i] == epoch
+                    same = this_epoch.tolist()
+                    # A vote of this epoch that was wrong is a served mistake: one by one.
+                    stops = np.flatnonzero(this_epoch & vote_wrong).tolist() + [n]
+                    tallies = (*tallies[:3], np.concatenate(([0], np.cumsum(this_epoch))).tolist())
+            while stops[f] < k:
+                f += 1
+            j = k
+            if batch.rows is not None:
+                j = seat.learner.skim(batch.rows, batch.labels, k, stops[f])
+            if j > k:
+                if taken is not None:
+                    seat.pass_votes(j - k, *(counts[j] - counts[k] for counts in tallies))
+                alert = seat.settle(t, False, policy)
+                if alert is not None:
+                    batch.alerts.append((j - 1, i, alert))
+                k = j
+                if seat.epoch != epoch:
+                    continue  # a restart: which votes are this epoch's, before item j
+            if j == n:
+                break
+            y, enc, item_id = ys[j], batch.encs[j], batch.ids[j]
+            if taken is None:  # a labelled example: "wrong" is the hypothesis at label time
+                was_wrong, did_update = seat.learn(item_id, enc, y)
+                if was_wrong:
+                    wrong[j] |= bit
+                changed = did_update
+            else:
+                same_epoch = same[j]
+                if same_epoch:
+                    seat.outstanding -= 1
+                voted_wrong = bool(vote_wrong[j])
+                seat.observe_vote(voted_wrong, bool(served_wrong[j]), same_epoch)
+                # Its vote was right and it has not updated since: it still predicts the label.
+                right = (
+                    not voted_wrong
+                    and same_epoch
+                    and seat.changed_at <= taken[j].seq
+                    and seat.learner.changes_only_on_update
+                )
+                _, did_update = seat.learn(item_id, enc, y, right)
+                changed = (same_epoch and voted_wrong) or did_update
+            if did_update:
                 seat.changed_at = self.counts["predictions"]
-            updated_bits |= updated << i
-            alert = seat.settle(t, (same_epoch and vote_wrong) or updated, policy)
+                updated[j] |= bit
+            alert = seat.settle(t, changed, policy)
             if alert is not None:
-                self._alerted(alert)
-        return wrong_bits, updated_bits
+                batch.alerts.append((j, i, alert))
+            k = j + 1
 
     def _alerted(self, alert: dict[str, Any]) -> None:
         self.new_alerts.append(alert)

@@ -205,3 +205,83 @@ def test_the_panel_learns_as_each_learner_would_alone(steps: list[tuple[str, int
     for seat, learner in zip(stream.seats, alone, strict=True):
         ours = seat.learner.to_state(include_space=False)
         assert ours == learner.to_state(include_space=False), seat.name
+
+
+ALERT_PANEL = [
+    {"name": "elim", "kind": "elimination", "params": {}},
+    {"name": "elim-neg", "kind": "elimination", "params": {"negations": True}},
+    {"name": "perc", "kind": "perceptron", "params": {"variant": "margin", "margin": 0.5}},
+    {"name": "pa", "kind": "passive-aggressive", "params": {"variant": "pa1", "margin": 0.5}},
+    {"name": "win", "kind": "winnow", "params": {"relevant": 1}},
+    {"name": "wm", "kind": "weighted-majority", "params": {"beta": 0.5}},
+    {"name": "wm0", "kind": "weighted-majority", "params": {"beta": 0.0}},
+    {"name": "halving", "kind": "halving", "params": {"rules": [["f0"], ["f1"], ["!f2"]]}},
+]
+
+BATCH_STEPS = st.lists(
+    st.tuples(
+        st.sampled_from(["predict", "feedback", "examples"]),
+        st.integers(min_value=1, max_value=40),
+        st.integers(min_value=0, max_value=2**32 - 1),
+    ),
+    min_size=1,
+    max_size=25,
+)
+
+
+@settings(max_examples=60, deadline=None)
+@given(BATCH_STEPS, st.sampled_from(["keep", "restart"]), st.floats(0.0, 0.5))
+def test_a_skimmed_batch_leaves_the_ledger_of_one_item_at_a_time(
+    steps: list[tuple[str, int, int]], policy: str, noise: float
+) -> None:
+    """Labelled batches are learned by skimming (``Learner.skim``: the items a learner surely
+    gets right and keeps are passed in bulk, the standing read once after them). Against the
+    same stream learning one item at a time, with small ceilings and noisy labels so that
+    learners cross them, raise alerts and (policy restart) start new epochs mid-batch: the same
+    answers, the same outcomes, the same alerts in the same order, the same stored state."""
+    config = {
+        "stream": "s",
+        "features": 6,
+        "learners": ALERT_PANEL,
+        "serve": "perc",
+        "label_wait_seconds": 1e9,
+        "on_exceed": policy,
+        "near": 0.8,
+        "webhook": None,
+    }
+    skimming = Stream(config, 0.0, history_points=8, max_remembered=10**6)
+    single = Stream(config, 0.0, history_points=8, max_remembered=10**6)
+    single.skim = False
+    flags = [f"f{i}" for i in range(6)]
+    waiting: list[str] = []
+    count = 0
+    t = 1.0
+    for kind, size, seed in steps:
+        rng = random.Random(seed)
+        t += 1.0
+
+        def label(features: list[str]) -> int:
+            y = int("f0" in features and "f2" not in features)
+            return 1 - y if rng.random() < noise else y
+
+        if kind == "feedback":
+            ids = rng.sample(waiting, min(size, len(waiting)))
+            ids += rng.sample(ids, min(2, len(ids))) + ["never-predicted"]  # repeats, unknown
+            labels = [rng.randint(0, 1) for _ in ids]
+            batch: list[Any] = list(zip(ids, labels, strict=True))
+            waiting = [i for i in waiting if i not in set(ids)]
+            outs = [s.apply_feedback(t, batch) for s in (skimming, single)]
+        else:
+            items = []
+            for _ in range(size):
+                count += 1
+                items.append((f"i{count}", rng.sample(flags, rng.randint(0, 4))))
+            if kind == "predict":
+                outs = [s.apply_predict(t, items) for s in (skimming, single)]
+                waiting += [item_id for item_id, _ in items]
+            else:
+                labelled = [(i, f, label(f)) for i, f in items]
+                outs = [s.apply_examples(t, labelled) for s in (skimming, single)]
+        assert outs[0] == outs[1]
+        assert skimming.new_alerts == single.new_alerts
+        assert skimming.to_state() == single.to_state()
