@@ -346,20 +346,24 @@ class Spread:
             self.hi = max(0, int(values.max()))
             self.n_lo = int(np.count_nonzero(values == self.lo)) if self.lo < 0 else 0
             self.n_hi = int(np.count_nonzero(values == self.hi)) if self.hi > 0 else 0
-        self._rebuild()
+        # Live values few enough to scan: no histogram until they outgrow the scan (as move()).
+        self._rebuild(
+            histogram=not (live and values is not None and len(values) <= self.scan_limit)
+        )
         if not live:
             self.values = None
 
-    def _rebuild(self) -> None:
-        """The histogram from ``values`` (empty without them); no move pending."""
+    def _rebuild(self, histogram: bool = True) -> None:
+        """The histogram from ``values`` (empty without them); no move pending. Without
+        ``histogram``, none is built: counts scan the values."""
         self.base = -4
         self.hist = np.zeros(8, dtype=np.int32)  # counts never exceed the members
         self.far: dict[int, int] = {}
         self._pending: list[tuple[np.ndarray, int]] = []  # moves not yet in the histogram
         self._low, self._high = self.lo, self.hi  # the extremes reached by the pending moves
-        self._stale = False  # True while the histogram is not kept (values are scanned)
+        self._stale = not histogram  # True while the histogram is not kept (values are scanned)
         values = self.values
-        if values is None or not len(values):
+        if values is None or not len(values) or not histogram:
             return
         # From within move(), values already hold the move that lo and hi do not yet show.
         low, high = min(self.lo, int(values.min())), max(self.hi, int(values.max()))

@@ -79,6 +79,7 @@ from learners.base import SLACK, Ceiling, Learner, check_number, ensure_length, 
 from learners.errors import ParameterError, StateError, shown
 from learners.features import Encoded, FeatureSpace, Rows
 from learners.rules import (
+    SPREAD_SCAN,
     ScaledWeights,
     SlotMap,
     Spread,
@@ -93,9 +94,11 @@ SOURCE = (
 )
 _NORMAL_EXPONENT = 64  # renormalise when the total weight leaves 2^-64 .. 2^64
 _sum = np.add.reduce  # what ndarray.sum calls, without its Python wrapper: the same sum
-# skim() counts the labels it passes in bulk (then rebuilds the spread of D, O(flags stored))
-# unless the flags stored outnumber their entries by this much plus BULK_FLOOR.
-BULK_RATIO, BULK_FLOOR = 8, 65_536
+# skim() counts the labels it passes in bulk and then rebuilds the spread of D from D: a scan
+# while at most BULK_SCAN flags are stored, else a histogram of them. Past BULK_SCAN it counts
+# in bulk only while the flags stored are at most BULK_RATIO times the entries counted, and
+# label by label (O(entries)) beyond.
+BULK_SCAN, BULK_RATIO = SPREAD_SCAN, 2
 
 
 class WeightedMajority(Learner):
@@ -307,7 +310,7 @@ class WeightedMajority(Learner):
             self._on1 = ensure_length(self._on1, len(self.space.names), 0)
             if self._spread is not None:
                 self._spread.values = d
-        if len(d) > BULK_RATIO * len(slots) + BULK_FLOOR:
+        if self._spread is not None and len(d) > max(BULK_SCAN, BULK_RATIO * len(slots)):
             for k in range(a, b):
                 self._count_label(self._slots(rows.encs[k]), int(ys[k]))
             return

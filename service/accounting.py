@@ -141,15 +141,23 @@ class Seat:
             self.total_served += 1
 
     def pass_votes(
-        self, count: int, vote_wrong: int, only_this: int, only_served: int, this_epoch: int
+        self,
+        count: int,
+        vote_wrong: int,
+        only_this: int,
+        only_served: int,
+        this_epoch: int,
+        served: int,
     ) -> None:
-        """:meth:`observe_vote` for ``count`` labelled predictions at once, none of them a served
-        mistake (a wrong vote of this epoch), and the release of those of this epoch."""
+        """:meth:`observe_vote` for ``count`` labelled predictions at once (``served`` of them
+        served mistakes: wrong votes of this epoch), and the release of those of this epoch."""
         self.compared += count
         self.vote_wrong += vote_wrong
         self.only_this_wrong += only_this
         self.only_served_wrong += only_served
         self.outstanding -= this_epoch
+        self.served_mistakes += served
+        self.total_served += served
 
     def learn(self, item_id: str, enc: Any, y: int, right: bool = False) -> tuple[bool, bool]:
         """Let the learner learn one label; return (hypothesis was wrong, it updated).
@@ -167,15 +175,16 @@ class Seat:
                 del recent[0]
         return wrong, updated
 
-    def settle(self, t: float, changed: bool, policy: str) -> dict[str, Any] | None:
-        """After a label: record history, and raise an alert on reaching exceeded/contradicted.
+    def settle(self, t: float, updated: bool, policy: str) -> dict[str, Any] | None:
+        """After a label: a history point if it ``updated`` the learner, and an alert on
+        reaching exceeded/contradicted.
 
         The ceiling's value is read once per label (its live inputs may move on any label) with
         the learner's cheap ``ceiling_value()``, and serves both the history point and the state.
         """
         learner = self.learner
         value = learner.ceiling_value()
-        if changed:
+        if updated:
             self._point(t, value)
         count = learner.updates if learner.counts == "updates" else learner.mistakes
         state = standing(count, value, learner.contradicted, self.near)
@@ -211,6 +220,15 @@ class Seat:
         self.learner = learners.make(self.kind, features=self.learner.space, **self.params)
         self.epoch += 1
         self._fresh(t)
+
+    def close_batch(self, t: float) -> None:
+        """After a batch of labels: a history point if served mistakes moved since the last one.
+
+        The history has a point after every update and after every batch whose labels found
+        served mistakes; each shows the counts as they stood after that label."""
+        last = self.history[-1] if self.history else None
+        if self.served_mistakes != (0 if last is None else last[2]):
+            self._point(t, self.learner.ceiling_value())
 
     def _point(self, t: float, value: float | None) -> None:
         self.history.append(

@@ -445,10 +445,11 @@ class Stream:
         ``taken``: the predictions the labels are for (None: labelled examples, never predicted;
         "wrong" is then the hypothesis at label time, else the vote). Learner by learner (they
         do not read each other), the items a learner certainly gets right and keeps are skimmed
-        (``Learner.skim``) and counted in bulk; the others, and every item whose vote this epoch
-        was wrong (a served mistake: a point of the history), go one by one. The ledger ends
-        exactly as it would item by item: over skimmed items nothing the standing reads moves
-        towards an alert, so one settle after them decides what one per item would.
+        (``Learner.skim``) and counted in bulk, served mistakes among them included; the others
+        go one by one. The ledger ends exactly as it would item by item: over skimmed items
+        nothing the standing reads moves towards an alert, so one settle after them decides
+        what one per item would; the history gets a point at each update and one at the end of
+        the batch (``Seat.close_batch``).
         """
         batch = _Labelled(t, ids, encs, ys, taken)
         if self.skim and any(seat.learner.skims() for seat in self.seats):
@@ -483,24 +484,22 @@ class Stream:
             )
         epoch = -1
         same: list[bool] = []
-        stops: list[int] = [n]
-        k = f = 0
+        k = 0
         while k < n:
             if seat.epoch != epoch:  # first, and after a restart: which votes are this epoch's
                 epoch = seat.epoch
-                f = 0
                 if taken is not None:
                     assert batch.epochs is not None
                     this_epoch = batch.epochs[:, i] == epoch
                     same = this_epoch.tolist()
-                    # A vote of this epoch that was wrong is a served mistake: one by one.
-                    stops = np.flatnonzero(this_epoch & vote_wrong).tolist() + [n]
-                    tallies = (*tallies[:3], np.concatenate(([0], np.cumsum(this_epoch))).tolist())
-            while stops[f] < k:
-                f += 1
+                    tallies = (
+                        *tallies[:3],
+                        np.concatenate(([0], np.cumsum(this_epoch))).tolist(),
+                        np.concatenate(([0], np.cumsum(this_epoch & vote_wrong))).tolist(),
+                    )
             j = k
             if batch.rows is not None:
-                j = seat.learner.skim(batch.rows, batch.labels, k, stops[f])
+                j = seat.learner.skim(batch.rows, batch.labels, k, n)
             if j > k:
                 if taken is not None:
                     seat.pass_votes(j - k, *(counts[j] - counts[k] for counts in tallies))
@@ -517,7 +516,6 @@ class Stream:
                 was_wrong, did_update = seat.learn(item_id, enc, y)
                 if was_wrong:
                     wrong[j] |= bit
-                changed = did_update
             else:
                 same_epoch = same[j]
                 if same_epoch:
@@ -532,14 +530,14 @@ class Stream:
                     and seat.learner.changes_only_on_update
                 )
                 _, did_update = seat.learn(item_id, enc, y, right)
-                changed = (same_epoch and voted_wrong) or did_update
             if did_update:
                 seat.changed_at = self.counts["predictions"]
                 updated[j] |= bit
-            alert = seat.settle(t, changed, policy)
+            alert = seat.settle(t, did_update, policy)
             if alert is not None:
                 batch.alerts.append((j, i, alert))
             k = j + 1
+        seat.close_batch(t)
 
     def _alerted(self, alert: dict[str, Any]) -> None:
         self.new_alerts.append(alert)

@@ -132,11 +132,13 @@ def test_skimming_on_exact_ties_ends_where_learning_item_by_item_does(
 def test_weighted_majority_counts_passed_labels_one_by_one_beyond_its_bulk_limit(
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
-    # Past BULK_RATIO * entries + BULK_FLOOR stored flags, the passed labels are counted one by
-    # one (a bulk count would scan every stored flag); both ways end in the same state.
+    # With many flags stored (past BULK_SCAN and BULK_RATIO times the entries), the passed
+    # labels are counted one by one (a bulk count would rebuild a histogram of every stored
+    # flag); both ways end in the same state.
     from learners import weighted_majority
 
-    monkeypatch.setattr(weighted_majority, "BULK_FLOOR", -(10**9))
+    monkeypatch.setattr(weighted_majority, "BULK_SCAN", 0)
+    monkeypatch.setattr(weighted_majority, "BULK_RATIO", 0)
     data = stream(seed=9, length=800)
     assert compare("weighted-majority", {}, data, seed=2) > 300
 

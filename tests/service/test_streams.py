@@ -229,6 +229,12 @@ BATCH_STEPS = st.lists(
 )
 
 
+def noisy_label(features: list[str], rng: random.Random, noise: float) -> int:
+    """f0 and not f2, flipped with probability ``noise``."""
+    y = int("f0" in features and "f2" not in features)
+    return 1 - y if rng.random() < noise else y
+
+
 @settings(max_examples=60, deadline=None)
 @given(BATCH_STEPS, st.sampled_from(["keep", "restart"]), st.floats(0.0, 0.5))
 def test_a_skimmed_batch_leaves_the_ledger_of_one_item_at_a_time(
@@ -259,11 +265,6 @@ def test_a_skimmed_batch_leaves_the_ledger_of_one_item_at_a_time(
     for kind, size, seed in steps:
         rng = random.Random(seed)
         t += 1.0
-
-        def label(features: list[str]) -> int:
-            y = int("f0" in features and "f2" not in features)
-            return 1 - y if rng.random() < noise else y
-
         if kind == "feedback":
             ids = rng.sample(waiting, min(size, len(waiting)))
             ids += rng.sample(ids, min(2, len(ids))) + ["never-predicted"]  # repeats, unknown
@@ -280,7 +281,7 @@ def test_a_skimmed_batch_leaves_the_ledger_of_one_item_at_a_time(
                 outs = [s.apply_predict(t, items) for s in (skimming, single)]
                 waiting += [item_id for item_id, _ in items]
             else:
-                labelled = [(i, f, label(f)) for i, f in items]
+                labelled = [(i, f, noisy_label(f, rng, noise)) for i, f in items]
                 outs = [s.apply_examples(t, labelled) for s in (skimming, single)]
         assert outs[0] == outs[1]
         assert skimming.new_alerts == single.new_alerts
