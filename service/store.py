@@ -37,6 +37,8 @@ from concurrent.futures import Future
 from pathlib import Path
 from typing import Any
 
+import orjson
+
 log = logging.getLogger("mistake_ledger.store")
 
 SCHEMA_VERSION = "1"
@@ -60,7 +62,18 @@ class _Job:
 
 
 # json.dumps(body, separators=(",", ":"), allow_nan=False), without an encoder per call
-_dumps = json.JSONEncoder(separators=(",", ":"), allow_nan=False).encode
+_json_dumps = json.JSONEncoder(separators=(",", ":"), allow_nan=False).encode
+
+
+def _dumps(body: Any) -> str:
+    """A log record's JSON text: orjson's (the same values, read back by any JSON reader), or
+    the json module's for what orjson does not write (integers past 64 bits)."""
+    try:
+        return orjson.dumps(body).decode()
+    except TypeError:
+        return _json_dumps(body)
+
+
 _INSERT = "INSERT INTO events (seq, stream, body) VALUES (?, ?, ?)"
 
 

@@ -29,9 +29,9 @@ import re
 import threading
 from collections.abc import Awaitable, Callable
 from concurrent.futures import Future
-from json.encoder import encode_basestring  # what the encoder below uses for text
 from typing import Any
 
+import orjson
 from fastapi.responses import Response
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
@@ -54,35 +54,13 @@ _ENCODE = json.JSONEncoder(ensure_ascii=False, allow_nan=False, separators=(",",
 
 
 def render(answer: Any) -> bytes:
-    """``answer`` as the JSON bytes JSONResponse renders. In a batch answer the items share a
-    few mappings (the votes or per-learner outcomes, ``service.streams``): each of those is
-    encoded once per answer, not once per item."""
-    items = answer.get("items") if type(answer) is dict and len(answer) == 1 else None
-    if type(items) is not list or not all(type(item) is dict for item in items):
+    """``answer`` as the JSON bytes JSONResponse renders (compact, UTF-8), written by orjson;
+    by the json module for what orjson does not write (integers past 64 bits). An answer holds
+    no NaN or infinity (orjson would write null)."""
+    try:
+        return orjson.dumps(answer)
+    except TypeError:
         return _ENCODE(answer).encode()
-    shared: dict[int, str] = {}  # id -> JSON of the mappings met so far (all alive meanwhile)
-    parts = []
-    for item in items:
-        fields = []
-        for key, value in item.items():
-            kind = type(value)
-            if kind is dict:
-                text = shared.get(id(value))
-                if text is None:
-                    text = shared[id(value)] = _ENCODE(value)
-            elif kind is str:
-                text = encode_basestring(value)
-            elif kind is int:
-                text = int.__repr__(value)
-            elif kind is bool or value is None:
-                text = "true" if value is True else "false" if value is False else "null"
-            else:
-                text = _ENCODE(value)
-            if type(key) is not str:
-                return _ENCODE(answer).encode()
-            fields.append(encode_basestring(key) + ":" + text)
-        parts.append("{" + ",".join(fields) + "}")
-    return ('{"items":[' + ",".join(parts) + "]}").encode()
 
 
 async def committed(future: Future[int]) -> None:

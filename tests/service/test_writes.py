@@ -32,6 +32,7 @@ from service.app import create_app
 from service.bodies import NonFinite, quick_examples, quick_feedback, quick_predict
 from service.settings import Settings
 from service.store import Store
+from service.store import _dumps as store_dumps
 from service.writes import FastWrites, render
 from tests.service.harness import Clock, Running, running
 
@@ -205,10 +206,25 @@ MAPPINGS = st.dictionaries(st.text(max_size=3), st.one_of(SCALARS, st.lists(SCAL
 def test_an_answer_renders_as_jsonresponse_renders_it(
     shared: list[dict[str, Any]], items: list[tuple[dict[str, Any], int]], other: Any
 ) -> None:
-    # Items that share mappings (by identity), as a batch's votes and outcomes do.
+    # Items that share mappings (by identity), as a batch's votes and outcomes do. The same
+    # JSON values as JSONResponse's (a float may be written otherwise: 1e-7 for 1e-07).
     batch = [{**fields, "shared": shared[k % len(shared)]} for fields, k in items]
     for answer in ({"items": batch}, {"items": batch, "more": other}, other, {"items": other}):
-        assert render(answer) == JSONResponse(answer).body
+        assert json.loads(render(answer)) == json.loads(JSONResponse(answer).body)
+
+
+def test_an_answer_past_what_orjson_writes_renders_by_the_json_module() -> None:
+    answer = {"items": [{"id": "a", "n": 10**30, "x": 1e-7}]}
+    assert json.loads(render(answer)) == answer
+
+
+@given(MAPPINGS, st.integers(min_value=-(10**40), max_value=10**40))
+@settings(max_examples=100, deadline=None)
+def test_a_log_record_reads_back_as_the_event_it_records(body: dict[str, Any], big: int) -> None:
+    # The log's text is orjson's, or the json module's past 64-bit integers: either way the
+    # json module (which replay reads it with) gives back the same values.
+    for event in (body, {**body, "big": big}):
+        assert json.loads(store_dumps(event)) == event
 
 
 # -- the fast path against the routes alone ----------------------------------------------------
