@@ -393,8 +393,10 @@ def ensure_length(array: Any, length: int, fill: float) -> Any:
 
 def first_false(passed: np.ndarray) -> int:
     """The index of the first False in a boolean array (its length when there is none)."""
-    misses = np.flatnonzero(~passed)
-    return int(misses[0]) if len(misses) else len(passed)
+    if not len(passed):
+        return 0
+    k = int(passed.argmin())  # the first False, or 0 when all are True
+    return len(passed) if passed[k] else k
 
 
 __all__ = [

@@ -43,6 +43,10 @@ from learners.base import Ceiling, Learner, first_false
 from learners.errors import ParameterError, shown
 from learners.features import Encoded, FeatureSpace, Rows
 
+# skim() counts, per item, required flags on plus _WEIGHT per flag on outside the allowed ones:
+# exact in float64 sums, and equal to |required| only when there is none of the latter.
+_WEIGHT = 2**20
+
 SOURCE = 'Valiant 1984, "A theory of the learnable", CACM 27(11); count from the standard proof'
 
 
@@ -123,8 +127,13 @@ class Elimination(Learner):
         lo, hi = rows.span(a, b)
         keys = rows.keys[lo:hi]
         assert self.required is not None  # skims() says so
-        predicted = rows.sums(required[keys], a, b) == len(self.required)
-        if negated is not None:
+        size = len(self.required)
+        if negated is None:
+            predicted = rows.sums(required[keys], a, b) == size
+        elif size < _WEIGHT:  # one sum: a flag outside the allowed ones weighs more than all
+            predicted = rows.sums(required[keys] + _WEIGHT * negated[keys], a, b) == size
+        else:
+            predicted = rows.sums(required[keys], a, b) == size
             predicted &= rows.sums(negated[keys], a, b) == 0
         return first_false(predicted == (ys[a:b] == 1))
 
@@ -132,18 +141,18 @@ class Elimination(Learner):
         n = len(self.space.names)
         masks = self._masks
         if masks is None:
-            required = np.zeros(n, dtype=np.int8)
+            required = np.zeros(n, dtype=np.int32)
             required[list(self.required or ())] = 1
             negated = None
             if self.negations:
-                negated = np.ones(n, dtype=np.int8)
+                negated = np.ones(n, dtype=np.int32)
                 negated[list(self.allowed)] = 0
             masks = self._masks = (required, negated)
         elif len(masks[0]) < n:  # names admitted since: none required, none allowed
             required, negated = masks
-            required = np.concatenate((required, np.zeros(n - len(required), dtype=np.int8)))
+            required = np.concatenate((required, np.zeros(n - len(required), dtype=np.int32)))
             if negated is not None:
-                negated = np.concatenate((negated, np.ones(n - len(negated), dtype=np.int8)))
+                negated = np.concatenate((negated, np.ones(n - len(negated), dtype=np.int32)))
             masks = self._masks = (required, negated)
         return masks
 

@@ -91,7 +91,7 @@ class Rows:
     :class:`Encoded`.
     """
 
-    __slots__ = ("encs", "keys", "vals", "starts", "owner", "sizes")
+    __slots__ = ("encs", "keys", "vals", "starts", "owner", "sizes", "widest", "_at", "_signs")
 
     def __init__(self, encs: Sequence[Encoded]) -> None:
         n = len(encs)
@@ -107,13 +107,23 @@ class Rows:
             parts = (e.vals if e.vals is not None else [1.0] * len(e.keys) for e in encs)
             self.vals = np.fromiter(chain.from_iterable(parts), np.float64, total)
         self.owner = np.repeat(np.arange(n, dtype=np.int64), self.sizes)
+        self.widest = int(self.sizes.max()) if n else 0  # the most entries of one item
+        self._at = self.starts.tolist()
+        self._signs: tuple[np.ndarray, np.ndarray] | None = None
 
     def __len__(self) -> int:
         return len(self.encs)
 
     def span(self, a: int, b: int) -> tuple[int, int]:
         """The entries of items ``a .. b - 1``."""
-        return int(self.starts[a]), int(self.starts[b])
+        return self._at[a], self._at[b]
+
+    def signs(self, ys: np.ndarray) -> np.ndarray:
+        """The labels ``ys`` (0 or 1, one per item) as -1.0 and 1.0, kept for the batch."""
+        kept = self._signs
+        if kept is None or kept[0] is not ys:
+            kept = self._signs = (ys, 2.0 * ys - 1.0)
+        return kept[1]
 
     def sums(self, values: np.ndarray, a: int, b: int) -> np.ndarray:
         """Per item of ``a .. b - 1``, the sum of ``values`` (one per entry of those items)."""

@@ -94,12 +94,14 @@ class LinearLearner(Learner):
         if rows.vals is not None:
             terms = terms * rows.vals[lo:hi]
         bias = self._b * self._c
-        score = rows.sums(terms, a, b) + bias
-        magnitude = rows.sums(np.abs(terms), a, b) + abs(bias)
-        signed = np.where(ys[a:b] == 1, score, -score)
-        assert self.clear_above is not None  # skims() says so
-        slack = (rows.sizes[a:b] + 4) * SLACK * (magnitude + abs(self.clear_above))
-        return first_false(signed > self.clear_above + slack)
+        signed = (rows.sums(terms, a, b) + bias) * rows.signs(ys)[a:b]
+        clear = self.clear_above
+        assert clear is not None  # skims() says so
+        # No item has more than ``widest`` terms, none larger than ``top`` in magnitude.
+        top = float(np.abs(terms).max()) if hi > lo else 0.0
+        n = rows.widest
+        slack = (n + 4) * SLACK * (n * top + abs(bias) + abs(clear))
+        return first_false(signed > clear + slack)
 
     def _absorb(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> None:
         # What a passed label still changes: R^2, the largest |x|^2 + c^2 learned, computed for

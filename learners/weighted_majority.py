@@ -296,7 +296,7 @@ class WeightedMajority(Learner):
         pos_total, neg_total = pos.scale * pos.total, neg.scale * neg.total
         ones = on_pos + (neg_total - on_neg)
         zeros = (pos_total - on_pos) + on_neg
-        slack = (rows.sizes[a:b] + 4) * SLACK * (pos_total + neg_total)
+        slack = (rows.widest + 4) * SLACK * (pos_total + neg_total)
         right = (ones > zeros) == (ys[a:b] == 1)
         return first_false(right & (np.abs(ones - zeros) > slack))
 

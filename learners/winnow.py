@@ -244,23 +244,23 @@ class Winnow(Learner):
         lo, hi = rows.span(a, b)
         keys = rows.keys[lo:hi]
         vals = None if rows.vals is None else rows.vals[lo:hi]
-        score = np.zeros(b - a)
-        magnitude = np.zeros(b - a)
+        score: np.ndarray | float = 0.0
+        magnitude = 0.0
         for weights, sign in ((self._w, 1.0), (self._against, -1.0)):
             if weights is None:
                 continue
             weights.grow(seen)
             terms = weights.rel[keys] if vals is None else weights.rel[keys] * vals
-            part = rows.sums(terms, a, b)  # weights and values are >= 0: also its magnitude
+            part = rows.sums(terms, a, b)
             if self.complement:
-                score += sign * weights.scale * (weights.total - part)
-                magnitude += weights.scale * (weights.total + part)
+                score = score + sign * weights.scale * (weights.total - part)
             else:
-                score += sign * weights.scale * part
-                magnitude += weights.scale * part
+                score = score + sign * weights.scale * part
+            # Weights and values are >= 0 and values <= 1, so part <= total.
+            magnitude += 2.0 * weights.scale * weights.total
         fires = score > self.theta
         wanted = ys[a:b] == (0 if self.complement else 1)
-        slack = (rows.sizes[a:b] + 4) * SLACK * (magnitude + self.theta)
+        slack = (rows.widest + 4) * SLACK * (magnitude + self.theta)
         return first_false((fires == wanted) & (np.abs(score - self.theta) > slack))
 
     def _factors(self, enc: Encoded, sign: int) -> tuple[float | np.ndarray, float]:

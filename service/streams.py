@@ -21,6 +21,7 @@ from __future__ import annotations
 import hashlib
 import json
 import threading
+from bisect import bisect_left
 from collections import OrderedDict
 from collections.abc import Mapping, Sequence
 from json.encoder import encode_basestring_ascii as _quote  # what json.dumps uses
@@ -752,7 +753,5 @@ class Stream:
 
 
 def _bucket(delay: float) -> int:
-    for i, bound in enumerate(DELAY_BUCKETS):
-        if delay <= bound:
-            return i
-    return len(DELAY_BUCKETS)
+    """The first bucket whose bound is at least ``delay`` (len(DELAY_BUCKETS): none is)."""
+    return bisect_left(DELAY_BUCKETS, delay)
