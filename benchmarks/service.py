@@ -67,6 +67,7 @@ from rich.table import Table
 
 import learners
 from service.demo import free_port  # a free port on 127.0.0.1, the HOST here
+from service.registry import state_text
 from service.streams import Stream
 
 HOST = "127.0.0.1"  # the only address this benchmark talks to
@@ -560,7 +561,7 @@ def measure_snapshot(source: Items, figures: Figures) -> None:
     stream.apply_feedback(1e5, [(f"p{j}", labels[j]) for j in range(20_000)])
     held = len(stream.pending) + len(stream.resolved)
     t0 = time.process_time()
-    text = json.dumps(stream.to_state(), separators=(",", ":"), allow_nan=False)
+    text = state_text(stream.to_state())
     figures.snapshot = (held, time.process_time() - t0, len(text))
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import random
 import shutil
 import sqlite3
@@ -325,3 +326,36 @@ def test_the_durability_setting_sets_sqlite_synchronous(
         conn = service.registry.store._conn
         assert conn.execute("PRAGMA synchronous").fetchone()[0] == pragma
         assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+
+
+def test_a_snapshot_text_reads_back_as_the_state_and_never_holds_nan() -> None:
+    # The snapshot's text is orjson's (the json module's past 64-bit integers); the json module
+    # reads either back to the same state. A learner state holding NaN or infinity is refused
+    # (ValueError), as json.dumps(allow_nan=False) refuses it: never written as null.
+    from service.registry import state_text
+    from service.streams import Stream
+
+    config = {
+        "stream": "s",
+        "features": 10,
+        "learners": [
+            {"name": "p", "kind": "perceptron", "params": {}},
+            {"name": "w", "kind": "weighted-majority", "params": {}},
+        ],
+        "serve": "p",
+        "label_wait_seconds": 60.0,
+        "on_exceed": "keep",
+        "near": 0.8,
+        "webhook": None,
+    }
+    stream = Stream(config, 0.0, history_points=10, max_remembered=100)
+    stream.apply_examples(1.0, [("a", {"x": 0.25, "y": 1e-7}, 1), ("b", ["y"], 0)])
+    stream.apply_predict(2.0, [("c", ["x", "z"])])
+    state = stream.to_state()
+    assert json.loads(state_text(state)) == json.loads(json.dumps(state))
+    state["created"] = 10**30  # past what orjson writes
+    assert json.loads(state_text(state))["created"] == 10**30
+    for bad in (float("nan"), float("inf")):
+        state["seats"][0]["learner"]["learned"]["b"] = bad
+        with pytest.raises(ValueError):
+            state_text(state)
