@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Mapping, Sequence
-from itertools import chain
+from itertools import chain, repeat
 from typing import Any
 
 import numpy as np
@@ -203,8 +203,7 @@ class FeatureSpace:
             pairs = [(k, v) for k, v in _pairs(item) if v != 0]
             names = [k for k, _ in pairs]
             vals = [v for _, v in pairs]
-        get = self.index.get
-        keys = [get(name, -1) for name in names]
+        keys = list(map(self.index.get, names, repeat(-1, len(names))))
         if -1 in keys:
             self._admit(names, keys)
         return Encoded(keys, vals)

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import threading
 from bisect import bisect_left
 from collections import OrderedDict
@@ -64,7 +65,13 @@ def fingerprint(features: Features) -> str:
     """
     try:
         if type(features) is list:
-            text = "[" + ", ".join([f"[{_quote(k)}, 1.0]" for k in sorted(features)]) + "]"
+            names = sorted(features)
+            if not names:
+                text = "[]"
+            elif _plain_text("".join(names)):  # every name written as itself: no quoting
+                text = '[["' + '", 1.0], ["'.join(names) + '", 1.0]]'
+            else:
+                text = "[" + ", ".join([f"[{_quote(k)}, 1.0]" for k in names]) + "]"
         elif type(features) is dict:
             pairs = sorted([(k, float(v)) for k, v in features.items() if v != 0])
             text = "[" + ", ".join([f"[{_quote(k)}, {v!r}]" for k, v in pairs]) + "]"
@@ -75,6 +82,16 @@ def fingerprint(features: Features) -> str:
     except TypeError:  # a name that is not a string: the general form decides
         text = _fingerprint_text(features)
     return hashlib.blake2b(text.encode(), digest_size=12).hexdigest()
+
+
+# A character json.dumps writes other than as itself (ensure_ascii): anything outside printable
+# ASCII, the quote and the backslash.
+_QUOTED = re.compile(r"[^\x20\x21\x23-\x5b\x5d-\x7e]")
+
+
+def _plain_text(text: str) -> bool:
+    """True when json.dumps writes every character of ``text`` as itself."""
+    return text.isascii() and _QUOTED.search(text) is None
 
 
 def _fingerprint_text(features: Features) -> str:
