@@ -23,7 +23,7 @@ import json
 import re
 import threading
 from bisect import bisect_left
-from collections import OrderedDict
+from collections import deque
 from collections.abc import Mapping, Sequence
 from json.encoder import encode_basestring_ascii as _quote  # what json.dumps uses
 from typing import Any, cast
@@ -114,10 +114,11 @@ class ItemError(Exception):
 class Pending:
     """A served prediction waiting for its label."""
 
-    __slots__ = ("t", "enc", "votes", "epochs", "fp", "seq")
+    __slots__ = ("item_id", "t", "enc", "votes", "epochs", "fp", "seq")
 
     def __init__(
         self,
+        item_id: str,
         t: float,
         enc: Encoded,
         votes: tuple[int, ...],
@@ -125,6 +126,7 @@ class Pending:
         fp: str,
         seq: int = -1,
     ) -> None:
+        self.item_id = item_id
         self.t = t
         self.enc = enc
         self.votes = votes
@@ -242,8 +244,15 @@ class Stream:
         self._vote_views: dict[tuple[int, ...], dict[str, int]] = {}
         self._outcome_views: dict[tuple[int, int], dict[str, Any]] = {}
         self.epochs = tuple(s.epoch for s in self.seats)
-        self.pending: OrderedDict[str, Pending] = OrderedDict()
-        self.resolved: OrderedDict[str, Resolved] = OrderedDict()
+        # Waiting predictions and remembered ids by id, each in the order it arrived (plain
+        # dicts keep it); beside each, that order as a queue, oldest first, so expiring and
+        # forgetting read the oldest in O(1) (a dict's first entry is not: it skips the holes
+        # its deletions left). A label leaves its prediction in ``_waiting``: skipped there
+        # when it comes first, and the queue is rebuilt when such entries outnumber the rest.
+        self.pending: dict[str, Pending] = {}
+        self._waiting: deque[Pending] = deque()
+        self.resolved: dict[str, Resolved] = {}
+        self._remembered: deque[str] = deque()
         self.counts = {"predictions": 0, "labels": 0, "examples": 0, "expired": 0}
         self.delay_buckets = [0] * (len(DELAY_BUCKETS) + 1)
         self.delay_sum = 0.0
@@ -268,22 +277,39 @@ class Stream:
         t = max(t, self.last_t)
         self.last_t = t
         wait = self.label_wait
-        pending = self.pending
-        while pending:
-            item_id, p = next(iter(pending.items()))
+        pending, waiting = self.pending, self._waiting
+        while waiting:
+            p = waiting[0]
+            if pending.get(p.item_id) is not p:  # labelled since
+                waiting.popleft()
+                continue
             if p.t + wait > t:
                 break
-            del pending[item_id]
+            waiting.popleft()
+            del pending[p.item_id]
             self._release(p)
-            self.resolved[item_id] = Resolved("expired", p.t + wait, p.fp, None, p.votes, 0, 0)
+            self._remember(p.item_id, Resolved("expired", p.t + wait, p.fp, None, p.votes, 0, 0))
             self.counts["expired"] += 1
-        resolved = self.resolved
-        while resolved:
-            item_id, r = next(iter(resolved.items()))
-            if r.at + wait > t and len(resolved) <= self.max_remembered:
+        if len(waiting) > 2 * len(pending) + 1024:
+            self._waiting = deque(pending.values())  # the dict keeps the order
+        resolved, remembered = self.resolved, self._remembered
+        while remembered:
+            item_id = remembered[0]
+            if resolved[item_id].at + wait > t and len(resolved) <= self.max_remembered:
                 break
+            remembered.popleft()
             del resolved[item_id]
         return t
+
+    def _wait(self, p: Pending) -> None:
+        """Add a prediction waiting for its label (its id is new to the stream)."""
+        self.pending[p.item_id] = p
+        self._waiting.append(p)
+
+    def _remember(self, item_id: str, r: Resolved) -> None:
+        """Remember a labelled, expired or example id (new to ``resolved``)."""
+        self.resolved[item_id] = r
+        self._remembered.append(item_id)
 
     def _release(self, p: Pending) -> None:
         for seat, epoch in zip(self.seats, p.epochs, strict=True):
@@ -333,13 +359,13 @@ class Stream:
             elif known.fp != fp or (isinstance(known, Resolved) and known.votes is None):
                 raise ItemError(index, self._reused(item_id, "before"))
         encoded, panel_votes = self._encode([items[i][1] for i in fresh], fresh)
-        pending, epochs, seq = self.pending, self.epochs, self.counts["predictions"]
+        epochs, seq = self.epochs, self.counts["predictions"]
         fresh_votes: dict[int, tuple[int, ...]] = {}
         for index, enc, votes in zip(fresh, encoded, panel_votes, strict=True):
             # The bare indices only: the views the learners built are rebuilt at label time,
             # so a waiting prediction costs little memory.
             bare = Encoded(enc.keys, enc.vals)
-            pending[items[index][0]] = Pending(t, bare, votes, epochs, prints[index], seq)
+            self._wait(Pending(items[index][0], t, bare, votes, epochs, prints[index], seq))
             fresh_votes[index] = votes
         if fresh:
             for seat in self.seats:
@@ -351,7 +377,7 @@ class Stream:
             if answered is not None:
                 out.append(self._answer(item_id, answered, duplicate=False))
                 continue
-            known = pending.get(item_id) or self.resolved[item_id]
+            known = self.pending.get(item_id) or self.resolved[item_id]
             assert known.votes is not None
             out.append(self._answer(item_id, known.votes, duplicate=True))
         return out
@@ -381,15 +407,19 @@ class Stream:
             ids = [items[i][0] for i in applied]
             ys = [items[i][1] for i in applied]
             bits = self._learn_many(t, ids, [p.enc for p in taken], ys, taken)
-            resolved, counts = self.resolved, self.counts
+            resolved, remembered = self.resolved, self._remembered
+            buckets, total = self.delay_buckets, self.delay_sum
+            outcome = self._outcome
             for index, p, (wrong, updated) in zip(applied, taken, bits, strict=True):
                 item_id, y = items[index]
-                delay = max(0.0, t - p.t)
-                self.delay_sum += delay
-                self.delay_buckets[_bucket(delay)] += 1
+                delay = t - p.t if t > p.t else 0.0
+                total += delay
+                buckets[bisect_left(DELAY_BUCKETS, delay)] += 1
                 resolved[item_id] = Resolved("labelled", t, p.fp, y, p.votes, wrong, updated)
-                counts["labels"] += 1
-                out[index] = self._outcome(item_id, "applied", wrong, updated)
+                remembered.append(item_id)  # as _remember does
+                out[index] = outcome(item_id, "applied", wrong, updated)
+            self.delay_sum = total
+            self.counts["labels"] += len(applied)
         for index in later:
             out[index] = self._not_pending(*items[index])
         self.advance(t)  # keeps the remembered ids within their bound
@@ -434,7 +464,7 @@ class Stream:
         bits = self._learn_many(t, ids, encoded, [items[i][2] for i in fresh], None)
         for index, (wrong, updated) in zip(fresh, bits, strict=True):
             item_id, _, y = items[index]
-            self.resolved[item_id] = Resolved("example", t, prints[index], y, None, wrong, updated)
+            self._remember(item_id, Resolved("example", t, prints[index], y, None, wrong, updated))
             self.counts["examples"] += 1
             done[item_id] = self._outcome(item_id, "applied", wrong, updated)
         out = []
@@ -758,17 +788,12 @@ class Stream:
                 [int(k) for k in keys], None if vals is None else [float(v) for v in vals]
             )
             key = tuple(epochs)
-            stream.pending[item_id] = Pending(
-                float(t), enc, tuple(votes), interned.setdefault(key, key), fp
+            stream._wait(
+                Pending(item_id, float(t), enc, tuple(votes), interned.setdefault(key, key), fp)
             )
         for item_id, *rest in state["resolved"]:
-            stream.resolved[item_id] = Resolved.from_list(rest)
+            stream._remember(item_id, Resolved.from_list(rest))
         stream.counts = {k: int(v) for k, v in state["counts"].items()}
         stream.delay_buckets = [int(v) for v in state["delay"]["buckets"]]
         stream.delay_sum = float(state["delay"]["sum"])
         return stream
-
-
-def _bucket(delay: float) -> int:
-    """The first bucket whose bound is at least ``delay`` (len(DELAY_BUCKETS): none is)."""
-    return bisect_left(DELAY_BUCKETS, delay)

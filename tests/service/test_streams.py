@@ -286,3 +286,105 @@ def test_a_skimmed_batch_leaves_the_ledger_of_one_item_at_a_time(
         assert outs[0] == outs[1]
         assert skimming.new_alerts == single.new_alerts
         assert skimming.to_state() == single.to_state()
+
+
+EXPIRY_STEPS = st.lists(
+    st.tuples(
+        st.sampled_from(["predict", "feedback", "examples", "wait"]),
+        st.integers(min_value=1, max_value=30),
+        st.integers(min_value=0, max_value=2**32 - 1),
+    ),
+    min_size=1,
+    max_size=40,
+)
+
+
+@settings(max_examples=80, deadline=None)
+@given(EXPIRY_STEPS)
+def test_expiry_and_forgetting_follow_arrival_order(steps: list[tuple[str, int, int]]) -> None:
+    """Waiting predictions expire oldest first once their wait ran out, and remembered ids are
+    forgotten oldest first once past the wait or past the count bound, as the module docstring
+    says; here against a plain model of those two rules (ordered lists), across labels that
+    leave holes, ids reused after they are forgotten, and restores from a snapshot."""
+    wait, bound = 10.0, 25
+    config = {
+        "stream": "s",
+        "features": 6,
+        "learners": [{"name": "elim", "kind": "elimination", "params": {}}],
+        "serve": "elim",
+        "label_wait_seconds": wait,
+        "on_exceed": "keep",
+        "near": 0.8,
+        "webhook": None,
+    }
+    stream = Stream(config, 0.0, history_points=8, max_remembered=bound)
+    waiting: list[tuple[str, float]] = []  # the model: (id, predicted at), in arrival order
+    remembered: list[tuple[str, float]] = []  # (id, resolved at)
+    t = 0.0
+    ids = [f"i{k}" for k in range(40)]  # few ids: reused once forgotten
+
+    def model_advance(now: float) -> None:
+        while waiting and waiting[0][1] + wait <= now:
+            item_id, at = waiting.pop(0)
+            remembered.append((item_id, at + wait))
+        while remembered and (remembered[0][1] + wait <= now or len(remembered) > bound):
+            remembered.pop(0)
+
+    for kind, size, seed in steps:
+        rng = random.Random(seed)
+        t += rng.choice([0.5, 1.0, 3.0])
+        if kind == "wait":
+            t += size
+            stream.advance(t)
+            model_advance(t)
+        elif kind == "feedback":
+            chosen = rng.sample([i for i, _ in waiting], min(size % 5, len(waiting)))
+            model_advance(t)
+            stream.apply_feedback(t, [(i, rng.randint(0, 1)) for i in chosen])
+            for item_id in chosen:
+                if item_id in dict(waiting):
+                    waiting.remove((item_id, dict(waiting)[item_id]))
+                    remembered.append((item_id, t))
+            model_advance(t)
+        else:
+            model_advance(t)
+            known = {i for i, _ in waiting} | {i for i, _ in remembered}
+            fresh = [i for i in rng.sample(ids, min(size % 6 + 1, len(ids))) if i not in known]
+            items = [(i, [f"f{rng.randint(0, 5)}"]) for i in fresh]
+            if kind == "predict":
+                stream.apply_predict(t, items)
+                waiting += [(i, t) for i in fresh]
+            else:
+                stream.apply_examples(t, [(i, f, rng.randint(0, 1)) for i, f in items])
+                remembered += [(i, t) for i in fresh]
+            model_advance(t)
+        if rng.random() < 0.2:
+            state = json.loads(json.dumps(stream.to_state()))
+            stream = Stream.from_state(state, history_points=8, max_remembered=bound)
+        assert list(stream.pending) == [i for i, _ in waiting]
+        assert list(stream.resolved) == [i for i, _ in remembered]
+
+
+def test_labelled_predictions_leave_the_expiry_queue_short() -> None:
+    # A label leaves its prediction's entry in the queue of waiting predictions; once such
+    # entries outnumber the waiting ones (twice, plus 1024) the queue is rebuilt, in order.
+    config = {
+        "stream": "s",
+        "features": 6,
+        "learners": [{"name": "elim", "kind": "elimination", "params": {}}],
+        "serve": "elim",
+        "label_wait_seconds": 100.0,
+        "on_exceed": "keep",
+        "near": 0.8,
+        "webhook": None,
+    }
+    stream = Stream(config, 0.0, history_points=8, max_remembered=10**6)
+    for k in range(30):
+        stream.apply_predict(1.0 + k, [(f"p{k}-{j}", ["f0"]) for j in range(100)])
+    stream.apply_feedback(50.0, [(f"p{k}-{j}", 1) for k in range(30) for j in range(99)])
+    assert len(stream.pending) == 30
+    assert len(stream._waiting) <= 2 * 30 + 1024  # rebuilt
+    stream.advance(115.5)  # the predictions of t = 1 .. 15 expire, oldest first
+    assert list(stream.pending) == [f"p{k}-99" for k in range(15, 30)]
+    assert list(stream.resolved)[-15:] == [f"p{k}-99" for k in range(15)]
+    assert stream.counts["expired"] == 15
