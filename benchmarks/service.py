@@ -17,8 +17,10 @@ What it runs, in order:
 3. a fresh service holding 10,000 such streams, each given a handful of items (four labelled
    examples, two predictions left waiting), whose resident memory is read from
    ``/proc/<pid>/status`` (VmRSS);
-4. the same six learners alone in this process on encoded items: the floor under the service's
-   cost per item (no HTTP, no validation, no store);
+4. the same six learners alone in this process on encoded items (no HTTP, no validation, no
+   store, no ledger): labelled one at a time (``learn_checked``), and in batches of 1000 the way
+   a stream learns them (``Learner.skim`` over the items each surely gets right and keeps, one at
+   a time where it stops): the floor under the service's cost per item;
 5. one snapshot of a stream with this panel holding 20,000 waiting predictions and 20,000
    remembered ids, in this process: the cost per id held that ``snapshot_size_ratio`` spreads
    over the items logged between snapshots.
@@ -43,6 +45,7 @@ the machine.
 from __future__ import annotations
 
 import argparse
+import gc
 import http.client
 import json
 import os
@@ -66,8 +69,10 @@ from rich.console import Console
 from rich.table import Table
 
 import learners
+from learners.features import Rows
 from service.demo import free_port  # a free port on 127.0.0.1, the HOST here
 from service.registry import state_text
+from service.settings import Settings
 from service.streams import Stream
 
 HOST = "127.0.0.1"  # the only address this benchmark talks to
@@ -500,6 +505,20 @@ def measure_normal(
         figures.normal = checked(loop, "predict (normal)")
 
 
+@contextmanager
+def server_gc(args: argparse.Namespace) -> Iterator[None]:
+    """This process's young-generation GC threshold set as the server sets it, meanwhile."""
+    before = gc.get_threshold()
+    young = args.gc_young_threshold
+    if young is None:
+        young = Settings().gc_young_threshold
+    gc.set_threshold(young, *before[1:])
+    try:
+        yield
+    finally:
+        gc.set_threshold(*before)
+
+
 def measure_panel(source: Items, figures: Figures) -> None:
     """The six learners alone in this process (no HTTP, no store): the floor under the service's
     per-item cost. They are called as a stream calls them (items checked once, then
@@ -525,12 +544,29 @@ def measure_panel(source: Items, figures: Figures) -> None:
         for learner in panel:
             learner.predict_checked(enc)
     figures.panel["predict"] = (time.process_time() - t0) / len(rest)
+    half = len(rest) // 2
     t0 = time.process_time()
-    for enc, y in rest:
+    for enc, y in rest[:half]:
         for learner in panel:
             learner.learn_checked(enc, y)
             learner.ceiling_value()
-    figures.panel["label"] = (time.process_time() - t0) / len(rest)
+    figures.panel["label"] = (time.process_time() - t0) / half
+    t0 = time.process_time()
+    for start in range(half, len(rest), BATCH):
+        chunk = rest[start : start + BATCH]
+        encs = [enc for enc, _ in chunk]
+        rows = Rows(encs)
+        ys = np.array([y for _, y in chunk], dtype=np.int8)
+        for learner in panel:
+            k = 0
+            while k < len(chunk):
+                k = learner.skim(rows, ys, k, len(chunk))
+                learner.ceiling_value()
+                if k < len(chunk):
+                    learner.learn_checked(encs[k], int(ys[k]))
+                    learner.ceiling_value()
+                    k += 1
+    figures.panel["skim"] = (time.process_time() - t0) / (len(rest) - half)
 
 
 def measure_snapshot(source: Items, figures: Figures) -> None:
@@ -743,14 +779,15 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
         )
         table.add_row("  creating streams", f"{memory['create_rate']:,.0f} streams/s")
     if figures.panel:
-        per_label = figures.panel["label"]
-        table.add_row(
-            "panel alone in process: label",
-            f"{1 / per_label:,.0f} labels/s",
-            "",
-            "",
-            f"{per_label * 1e6:,.1f} /label",
-        )
+        for key, label in (("label", "one at a time"), ("skim", "batches of 1000, skimming")):
+            per_label = figures.panel[key]
+            table.add_row(
+                f"panel alone in process: labels, {label}",
+                f"{1 / per_label:,.0f} labels/s",
+                "",
+                "",
+                f"{per_label * 1e6:,.1f} /label",
+            )
         table.add_row(
             "panel alone in process: predict",
             f"{1 / figures.panel['predict']:,.0f} items/s",
@@ -787,7 +824,9 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
         f"{args.seconds:g} s. Server CPU: "
         "user + system time of the server process during the loop, per call or item. Panel "
         "alone: the same six learners in this process on encoded items (learn_checked, then "
-        "ceiling_value(), per label), the floor under the service's cost per item. "
+        "ceiling_value(), per label; or skim over a batch, learn_checked where it stops), the "
+        "floor under the service's cost per item; it and the snapshot run with the server's "
+        "young-generation GC threshold. "
         f"Panel: {', '.join(p['name'] for p in PANEL)} on an open space of {SPACE_SIZE:,} flags "
         f"(about {FLAGS_PER_ITEM + 1} on per item). Durability FULL (the default): a write "
         f"answers after its commit's fsync. {os.cpu_count()} cores, Python "
@@ -829,8 +868,9 @@ def main(argv: list[str] | None = None) -> None:
         if not args.skip_memory:
             console.print(f"memory: {args.streams:,} streams ...")
             measure_memory(work, source, args, figures)
-    measure_panel(source, figures)
-    measure_snapshot(source, figures)
+    with server_gc(args):
+        measure_panel(source, figures)
+        measure_snapshot(source, figures)
     report(figures, args, console)
 
 
