@@ -210,6 +210,12 @@ class Learner(ABC):
         """True when :meth:`skim` can pass items at all (a learner that screens overrides it)."""
         return False
 
+    def _rows_votes(self, rows: Rows, a: int, b: int) -> tuple[np.ndarray, np.ndarray] | None:
+        """The hypothesis' predictions on items ``a .. b - 1`` of ``rows`` computed at once (a
+        boolean array), and which of them are sure: clear of any rounding, so equal to
+        :meth:`predict_checked`'s. None when the learner has no such computation (default)."""
+        return None
+
     def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
         """How many of the items ``a, a + 1, ...`` (before ``b``) of ``rows``, from the first on,
         the hypothesis as it is now certainly predicts right and would not update on. Must not
@@ -258,6 +264,18 @@ class Learner(ABC):
             self.space.forget(known)
             raise
         return enc
+
+    def predict_rows(self, rows: Rows) -> list[int]:
+        """:meth:`predict_checked` on every item of ``rows`` (encoded and checked already):
+        computed at once where the learner can, item by item where a vote is not sure."""
+        found = self._rows_votes(rows, 0, len(rows)) if len(rows) else None
+        if found is None:
+            return [self._predict(enc) for enc in rows.encs]
+        votes, sure = found
+        out: list[int] = votes.astype(np.int8).tolist()
+        for k in np.flatnonzero(~sure).tolist():
+            out[k] = self._predict(rows.encs[k])
+        return out
 
     def predict(self, item: Item | Encoded) -> int:
         """Predict 0 or 1 for one item. Does not learn."""

@@ -121,6 +121,16 @@ class Elimination(Learner):
         return self.required is not None
 
     def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
+        predicted = self._counted_votes(rows, a, b)
+        return first_false(predicted == (ys[a:b] == 1))
+
+    def _rows_votes(self, rows: Rows, a: int, b: int) -> tuple[np.ndarray, np.ndarray] | None:
+        if self.required is None:
+            return None  # every literal: item by item
+        predicted = self._counted_votes(rows, a, b)
+        return predicted, np.ones(len(predicted), dtype=bool)
+
+    def _counted_votes(self, rows: Rows, a: int, b: int) -> np.ndarray:
         # The same test as _predict, as counts: every required flag on, and (with negations)
         # no flag on outside the allowed ones. Integer counts: no rounding to allow for.
         required, negated = self._mask()
@@ -135,7 +145,7 @@ class Elimination(Learner):
         else:
             predicted = rows.sums(required[keys], a, b) == size
             predicted &= rows.sums(negated[keys], a, b) == 0
-        return first_false(predicted == (ys[a:b] == 1))
+        return predicted
 
     def _mask(self) -> tuple[np.ndarray, np.ndarray | None]:
         n = len(self.space.names)

@@ -122,6 +122,22 @@ class LinearLearner(Learner):
             if exact > self._r2:
                 self._r2 = exact
 
+    def _rows_votes(self, rows: Rows, a: int, b: int) -> tuple[np.ndarray, np.ndarray] | None:
+        if self.clear_above is None:
+            return None  # averaged and voted predict with other weights
+        if len(self._w) < len(self.space.names):
+            self._grow()
+        lo, hi = rows.span(a, b)
+        terms = self._w[rows.keys[lo:hi]]
+        if rows.vals is not None:
+            terms = terms * rows.vals[lo:hi]
+        bias = self._b * self._c
+        score = rows.sums(terms, a, b) + bias
+        top = float(np.abs(terms).max()) if hi > lo else 0.0
+        n = rows.widest
+        slack = (n + 4) * SLACK * (n * top + abs(bias))
+        return score > 0.0, np.abs(score) > slack
+
     @abstractmethod
     def weights(self) -> tuple[dict[str, float], float]:
         """The weights the learner predicts with, by feature name, and the intercept."""

@@ -286,9 +286,14 @@ class WeightedMajority(Learner):
         return keys, owner
 
     def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
-        # _tally's two votes for many items at once; an item passes when the master predicts
-        # its label by more than rounding can move the votes (every weight is >= 0, so no
-        # partial sum exceeds the total weight).
+        # An item passes when the master's vote is sure and right: then the weights stay.
+        votes, sure = self._rows_votes(rows, a, b)
+        return first_false(sure & (votes == (ys[a:b] == 1)))
+
+    def _rows_votes(self, rows: Rows, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+        # _tally's two votes for many items at once; the master's vote is sure when one side
+        # leads by more than rounding can move the sums (every weight is >= 0, so no partial
+        # sum exceeds the total weight).
         slots, owner = self._rows_slots(rows, a, b)
         pos, neg = self._pos, self._neg
         on_pos = pos.scale * np.bincount(owner, weights=pos.rel[slots], minlength=b - a)
@@ -297,8 +302,7 @@ class WeightedMajority(Learner):
         ones = on_pos + (neg_total - on_neg)
         zeros = (pos_total - on_pos) + on_neg
         slack = (rows.widest + 4) * SLACK * (pos_total + neg_total)
-        right = (ones > zeros) == (ys[a:b] == 1)
-        return first_false(right & (np.abs(ones - zeros) > slack))
+        return ones > zeros, np.abs(ones - zeros) > slack
 
     def _absorb(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> None:
         # The weights stay (no master mistake); every rule's mistakes move, as _count_label

@@ -238,8 +238,13 @@ class Winnow(Learner):
         return True
 
     def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
-        # _tally's score for many items at once; an item passes when it fires as wanted and its
-        # score is clear of theta by more than rounding can move it.
+        # An item passes when the vote is sure and right: Winnow moves only on a mistake.
+        votes, sure = self._rows_votes(rows, a, b)
+        return first_false(sure & (votes == (ys[a:b] == 1)))
+
+    def _rows_votes(self, rows: Rows, a: int, b: int) -> tuple[np.ndarray, np.ndarray]:
+        # _tally's score for many items at once; a vote is sure when the score is clear of
+        # theta by more than rounding can move it.
         seen = len(self.space.names)
         lo, hi = rows.span(a, b)
         keys = rows.keys[lo:hi]
@@ -258,10 +263,10 @@ class Winnow(Learner):
                 score = score + sign * weights.scale * part
             # Weights and values are >= 0 and values <= 1, so part <= total.
             magnitude += 2.0 * weights.scale * weights.total
-        fires = score > self.theta
-        wanted = ys[a:b] == (0 if self.complement else 1)
+        fires = np.asarray(score > self.theta)
         slack = (rows.widest + 4) * SLACK * (magnitude + self.theta)
-        return first_false((fires == wanted) & (np.abs(score - self.theta) > slack))
+        sure = np.asarray(np.abs(score - self.theta) > slack)
+        return (~fires if self.complement else fires), sure
 
     def _factors(self, enc: Encoded, sign: int) -> tuple[float | np.ndarray, float]:
         """Factors (flags on the item, every other flag) for ``w_i *= alpha ** (sign z_i)``."""

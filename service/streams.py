@@ -615,8 +615,6 @@ class Stream:
             for enc in encoded:
                 for learner in checkers:
                     learner.check(enc)
-                if vote:
-                    votes.append(tuple([learner.predict_checked(enc) for learner in panel]))
                 read += 1
         except LearnerError as exc:
             for name in space.names[mark:]:
@@ -625,6 +623,9 @@ class Stream:
             where = read if len(encoded) == len(features) else len(encoded)
             error = InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
             raise ItemError(indices[where], error) from exc
+        if vote and encoded:
+            rows = Rows(encoded)  # each learner votes on the whole batch at once
+            votes = list(zip(*[learner.predict_rows(rows) for learner in panel], strict=True))
         return encoded, votes
 
     # -- answers ---------------------------------------------------------------------------

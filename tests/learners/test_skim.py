@@ -175,3 +175,61 @@ def test_elimination_keeps_its_masks_in_step_with_names_admitted_between_batches
         stops = {0, 7} if round_ % 2 else set()  # item 0 learned before any screen this batch
         assert skim_through(skimmer, Rows(encs), ys, stops)[0] == expected
         assert skimmer.to_state() == plain.to_state()
+
+
+@pytest.mark.parametrize(("kind", "params"), CASES)
+@pytest.mark.parametrize("flags_only", [False, True])
+def test_votes_on_a_batch_are_the_votes_item_by_item(
+    kind: str, params: dict[str, Any], flags_only: bool
+) -> None:
+    # predict_rows computes a batch's votes at once where it is sure of them and asks
+    # predict_checked where rounding could decide; the votes must be the same.
+    data = stream(seed=13, length=600)
+    if flags_only:
+        data = [({k: 1.0 for k in item if k != "signal"}, label) for item, label in data]
+    learner = learners.make(kind, features=50, **params)
+    for start in range(0, len(data), 100):
+        batch = data[start : start + 100]
+        encs = [learner.encode(item) for item, _ in batch]
+        assert learner.predict_rows(Rows(encs)) == [learner.predict_checked(e) for e in encs]
+        for enc, (_, label) in zip(encs, batch, strict=True):
+            learner.learn_checked(enc, label)
+
+
+@pytest.mark.parametrize(("kind", "params"), TIE_CASES)
+def test_votes_on_exact_ties_are_the_votes_item_by_item(kind: str, params: dict[str, Any]) -> None:
+    data = tie_stream(seed=6, length=1500)
+    learner = learners.make(kind, features=6, **params)
+    for start in range(0, len(data), 50):
+        batch = data[start : start + 50]
+        encs = [learner.encode(item) for item, _ in batch]
+        assert learner.predict_rows(Rows(encs)) == [learner.predict_checked(e) for e in encs]
+        for enc, (_, label) in zip(encs, batch, strict=True):
+            learner.learn_checked(enc, label)
+
+
+# Weights whose sum numpy (pairwise, eight at a time) and a running sum round differently: the
+# first sums to 2.0 by numpy and to 0.0 running; the second to 0.0 and 4.0 (found by search).
+ADVERSARIAL = [
+    [-1e16, -1.0, 1.0, 1.0, 0.5, 1e16, -1e16, 1.0, 0.5, 1e16, 1.0, -1.0],
+    [-1e16, 1.0, -1e16, 1e16, -1.0, -1.0, -1.0, 0.5, -1.0, 1e16, 3.0, 1.0],
+]
+
+
+@pytest.mark.parametrize("weights", ADVERSARIAL)
+def test_a_vote_that_rounding_decides_is_asked_of_the_learner(weights: list[float]) -> None:
+    # The screens sum in another order than the learner's own step; where the two could
+    # disagree (a sum that cancels huge terms) the vote is not sure and the learner decides.
+    names = [f"f{i}" for i in range(len(weights))]
+    state = learners.make("perceptron", features=names, bias=None).to_state()
+    state["learned"]["w"] = {"idx": list(range(len(weights))), "val": weights}
+    plain = learners.from_state(state)
+    skimmer = learners.from_state(state)
+    enc = plain.encode(names)
+    rows = Rows([enc, enc])
+    assert plain.predict_rows(rows) == [plain.predict_checked(enc)] * 2
+    for label in (0, 1):
+        ys = np.array([label, label], dtype=np.int8)
+        got, _ = skim_through(skimmer, rows, ys, set())
+        assert got == [plain.learn_checked(enc, label) for _ in range(2)]
+        assert skimmer.to_state() == plain.to_state()
