@@ -38,6 +38,10 @@ from service.errors import Conflict, InvalidInput
 Features = Mapping[str, float] | Sequence[str]
 
 VIEW_CACHE = 64  # distinct vote / outcome views kept per stream
+# Batches of at least this many items are voted and learned by each learner at once (screens
+# over the whole batch, ``Learner.skim``, ``Learner.predict_rows``); smaller ones item by item,
+# where the screens' fixed cost would outweigh what they save. The same answers either way.
+BATCH_AT_ONCE = 16
 
 # Label delay histogram buckets in seconds (one second to thirty days).
 DELAY_BUCKETS = (
@@ -260,8 +264,10 @@ class Stream:
         self.volatile = {"duplicates": 0, "conflicts": 0}
         self.new_alerts: list[dict[str, Any]] = []
         # Learn labelled batches by skimming (Learner.skim); False: one item at a time (the
-        # same ledger; kept for the tests that compare the two).
+        # same ledger; kept for the tests that compare the two). Batches of at least
+        # ``at_once`` items are skimmed and voted on at once.
         self.skim = True
+        self.at_once = BATCH_AT_ONCE
         # Bookkeeping for the registry and the store.
         self.lock = threading.RLock()
         self.deleted = False
@@ -500,9 +506,13 @@ class Stream:
         the batch (``Seat.close_batch``).
         """
         batch = _Labelled(t, ids, encs, ys, taken)
-        if self.skim and any(seat.learner.skims() for seat in self.seats):
+        if (
+            self.skim
+            and len(encs) >= self.at_once
+            and any(seat.learner.skims() for seat in self.seats)
+        ):
             batch.rows = Rows(encs)
-        if taken is not None:
+        if taken is not None and batch.rows is not None:
             width = len(self.seats)
             batch.votes = np.array([p.votes for p in taken], dtype=np.int8).reshape(-1, width)
             batch.epochs = np.array([p.epochs for p in taken], dtype=np.int64).reshape(-1, width)
@@ -519,7 +529,9 @@ class Stream:
         ys, taken, wrong, updated = batch.ys, batch.taken, batch.wrong, batch.updated
         bit = 1 << i
         tallies: tuple[list[int], ...] = ()
-        if taken is not None:
+        skimming = batch.rows is not None
+        serve = self.serve_index
+        if taken is not None and skimming:
             assert batch.votes is not None and batch.served_wrong is not None
             vote_wrong = batch.votes[:, i] != batch.labels
             served_wrong = batch.served_wrong
@@ -531,22 +543,21 @@ class Stream:
                 for flags in (vote_wrong, vote_wrong & ~served_wrong, served_wrong & ~vote_wrong)
             )
         epoch = -1
-        same: list[bool] = []
         k = 0
         while k < n:
             if seat.epoch != epoch:  # first, and after a restart: which votes are this epoch's
                 epoch = seat.epoch
-                if taken is not None:
+                if taken is not None and skimming:
                     assert batch.epochs is not None
                     this_epoch = batch.epochs[:, i] == epoch
-                    same = this_epoch.tolist()
                     tallies = (
                         *tallies[:3],
                         np.concatenate(([0], np.cumsum(this_epoch))).tolist(),
                         np.concatenate(([0], np.cumsum(this_epoch & vote_wrong))).tolist(),
                     )
             j = k
-            if batch.rows is not None:
+            if skimming:
+                assert batch.rows is not None
                 j = seat.learner.skim(batch.rows, batch.labels, k, n)
             if j > k:
                 if taken is not None:
@@ -565,16 +576,19 @@ class Stream:
                 if was_wrong:
                     wrong[j] |= bit
             else:
-                same_epoch = same[j]
+                p = taken[j]
+                same_epoch = p.epochs[i] == seat.epoch
                 if same_epoch:
                     seat.outstanding -= 1
-                voted_wrong = bool(vote_wrong[j])
-                seat.observe_vote(voted_wrong, bool(served_wrong[j]), same_epoch)
+                voted_wrong = p.votes[i] != y
+                if voted_wrong and not skimming:  # (skimming: set above for every item)
+                    wrong[j] |= bit
+                seat.observe_vote(voted_wrong, p.votes[serve] != y, same_epoch)
                 # Its vote was right and it has not updated since: it still predicts the label.
                 right = (
                     not voted_wrong
                     and same_epoch
-                    and seat.changed_at <= taken[j].seq
+                    and seat.changed_at <= p.seq
                     and seat.learner.changes_only_on_update
                 )
                 _, did_update = seat.learn(item_id, enc, y, right)
@@ -623,9 +637,11 @@ class Stream:
             where = read if len(encoded) == len(features) else len(encoded)
             error = InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
             raise ItemError(indices[where], error) from exc
-        if vote and encoded:
+        if vote and len(encoded) >= self.at_once:
             rows = Rows(encoded)  # each learner votes on the whole batch at once
             votes = list(zip(*[learner.predict_rows(rows) for learner in panel], strict=True))
+        elif vote:
+            votes = [tuple([learner.predict_checked(e) for learner in panel]) for e in encoded]
         return encoded, votes
 
     # -- answers ---------------------------------------------------------------------------
