@@ -188,15 +188,20 @@ class FeatureSpace:
         """How many names are known (admitted or declared)."""
         return len(self.names)
 
-    def encode(self, item: Item | Encoded) -> Encoded:
-        """Validate ``item`` and return it in this space's indices, admitting new names if open."""
+    def encode(self, item: Item | Encoded, checked: bool = False) -> Encoded:
+        """Validate ``item`` and return it in this space's indices, admitting new names if open.
+
+        ``checked``: the caller has checked the item's shape already (a list of distinct
+        non-empty strings, or a dict of non-empty strings to finite numbers, as the service's
+        request readers do), so a list or a dict is not checked again; the names are still
+        checked against the space."""
         if isinstance(item, Encoded):
             return item
         vals: list[float] | None
-        if type(item) is list and _plain_flags(item):
+        if type(item) is list and (checked or _plain_flags(item)):
             names: list[str] = item
             vals = None
-        elif type(item) is dict and _plain_values(item):
+        elif type(item) is dict and (checked or _plain_values(item)):
             names = [k for k, v in item.items() if v != 0]
             vals = [float(item[k]) for k in names]
         else:  # the slow path finds and names what is wrong, or accepts other mappings

@@ -365,13 +365,14 @@ class Registry:
             return stream.compare()
 
     # -- writes ----------------------------------------------------------------------------
+    # Items come as the routes read them (service.bodies or the models of service.schemas):
+    # their shapes are checked, so the streams do not check them again.
 
     def predict(
         self, name: str, items: Sequence[tuple[str | None, Features]], batch: bool
     ) -> tuple[list[dict[str, Any]], Future[int]]:
         self._check_batch(len(items))
-        for index, (_, features) in enumerate(items):
-            self._check_features(features, index, batch)
+        self._check_features([features for _, features in items], batch)
         ids = [item_id or uuid.uuid4().hex for item_id, _ in items]
         pairs = [(item_id, features) for item_id, (_, features) in zip(ids, items, strict=True)]
         stream = self.get(name)
@@ -379,7 +380,7 @@ class Registry:
             self._usable(stream)
             t = max(self.clock(), stream.last_t)
             try:
-                results = stream.apply_predict(t, pairs)
+                results = stream.apply_predict(t, pairs, checked=True)  # read by the routes
             except ItemError as exc:
                 raise _located(exc, batch) from exc.error
             fresh = [
@@ -416,15 +417,14 @@ class Registry:
         self, name: str, items: Sequence[tuple[str | None, Features, int]], batch: bool
     ) -> tuple[list[dict[str, Any]], Future[int]]:
         self._check_batch(len(items))
-        for index, (_, features, _) in enumerate(items):
-            self._check_features(features, index, batch)
+        self._check_features([features for _, features, _ in items], batch)
         triples = [(item_id or uuid.uuid4().hex, f, y) for item_id, f, y in items]
         stream = self.get(name)
         with stream.lock:
             self._usable(stream)
             t = max(self.clock(), stream.last_t)
             try:
-                results = stream.apply_examples(t, triples)
+                results = stream.apply_examples(t, triples, checked=True)  # read by the routes
             except ItemError as exc:
                 raise _located(exc, batch) from exc.error
             fresh = [
@@ -499,9 +499,12 @@ class Registry:
                 value=count,
             )
 
-    def _check_features(self, features: Features, index: int, batch: bool) -> None:
+    def _check_features(self, column: list[Features], batch: bool) -> None:
         limit = self.settings.max_features_per_item
-        if len(features) > limit:
+        sizes = list(map(len, column))
+        if sizes and max(sizes) > limit:
+            index = next(i for i, size in enumerate(sizes) if size > limit)
+            features = column[index]
             where = f"items[{index}].features" if batch else "features"
             raise InvalidInput(
                 f"An item holds at most {limit} features; got {len(features)}.",

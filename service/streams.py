@@ -340,13 +340,14 @@ class Stream:
         raise ValueError(f"unknown event type {kind!r}")
 
     def apply_predict(
-        self, t: float, items: Sequence[tuple[str, Features]]
+        self, t: float, items: Sequence[tuple[str, Features]], checked: bool = False
     ) -> list[dict[str, Any]]:
         """Every learner votes on every new item; the serving learner's vote is the answer.
 
         Returns one answer per item, with ``duplicate`` for ids already answered with the same
         features. Raises (changing nothing) on an id reused with other features or a feature the
-        space does not admit.
+        space does not admit. ``checked``: the items' shapes are checked already (see
+        ``FeatureSpace.encode``).
         """
         t = self.advance(t)
         prints = [fingerprint(features) for _, features in items]
@@ -364,7 +365,7 @@ class Stream:
                 fresh.append(index)
             elif known.fp != fp or (isinstance(known, Resolved) and known.votes is None):
                 raise ItemError(index, self._reused(item_id, "before"))
-        encoded, panel_votes = self._encode([items[i][1] for i in fresh], fresh)
+        encoded, panel_votes = self._encode([items[i][1] for i in fresh], fresh, checked=checked)
         epochs, seq = self.epochs, self.counts["predictions"]
         fresh_votes: dict[int, tuple[int, ...]] = {}
         for index, enc, votes in zip(fresh, encoded, panel_votes, strict=True):
@@ -433,9 +434,10 @@ class Stream:
         return cast(list[dict[str, Any]], out)
 
     def apply_examples(
-        self, t: float, items: Sequence[tuple[str, Features, int]]
+        self, t: float, items: Sequence[tuple[str, Features, int]], checked: bool = False
     ) -> list[dict[str, Any]]:
-        """Labelled items never predicted: every learner learns; no served mistake is counted."""
+        """Labelled items never predicted: every learner learns; no served mistake is counted.
+        ``checked`` as for :meth:`apply_predict`."""
         t = self.advance(t)
         prints = [fingerprint(features) for _, features, _ in items]
         first: dict[str, int] = {}
@@ -464,7 +466,8 @@ class Stream:
                 fresh.append(index)
             elif known.kind != "example" or known.fp != fp or known.label != y:
                 raise ItemError(index, self._reused(item_id, "before"))
-        encoded, _ = self._encode([items[i][1] for i in fresh], fresh, vote=False)
+        features = [items[i][1] for i in fresh]
+        encoded, _ = self._encode(features, fresh, vote=False, checked=checked)
         done: dict[str, dict[str, Any]] = {}
         ids = [items[i][0] for i in fresh]
         bits = self._learn_many(t, ids, encoded, [items[i][2] for i in fresh], None)
@@ -606,7 +609,12 @@ class Stream:
         self.epochs = tuple(s.epoch for s in self.seats)  # a restart begins a new epoch
 
     def _encode(
-        self, features: list[Features], indices: list[int], *, vote: bool = True
+        self,
+        features: list[Features],
+        indices: list[int],
+        *,
+        vote: bool = True,
+        checked: bool = False,
     ) -> tuple[list[Encoded], list[tuple[int, ...]]]:
         """Encode the items and let every learner vote on them (or only check them, when
         ``vote`` is false), all or nothing.
@@ -625,7 +633,7 @@ class Stream:
         read = 0  # items every learner has read
         try:
             for item in features:
-                encoded.append(space.encode(item))
+                encoded.append(space.encode(item, checked))
             for enc in encoded:
                 for learner in checkers:
                     learner.check(enc)
