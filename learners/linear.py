@@ -86,7 +86,10 @@ class LinearLearner(Learner):
     def skims(self) -> bool:
         return self.clear_above is not None
 
-    def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
+    def _scores(self, rows: Rows, a: int, b: int) -> tuple[np.ndarray, float]:
+        """``w . x + b c`` for items ``a .. b - 1`` of ``rows``, and the most that rounding
+        can move one of them (as the learner sums it or as here):
+        ``(n + 4) SLACK (n top + |b c|)``, with no item over ``n`` terms, none over ``top``."""
         if len(self._w) < len(self.space.names):
             self._grow()
         lo, hi = rows.span(a, b)
@@ -94,13 +97,16 @@ class LinearLearner(Learner):
         if rows.vals is not None:
             terms = terms * rows.vals[lo:hi]
         bias = self._b * self._c
-        signed = (rows.sums(terms, a, b) + bias) * rows.signs(ys)[a:b]
-        clear = self.clear_above
-        assert clear is not None  # skims() says so
-        # No item has more than ``widest`` terms, none larger than ``top`` in magnitude.
         top = float(np.abs(terms).max()) if hi > lo else 0.0
         n = rows.widest
-        slack = (n + 4) * SLACK * (n * top + abs(bias) + abs(clear))
+        return rows.sums(terms, a, b) + bias, (n + 4) * SLACK * (n * top + abs(bias))
+
+    def _screen(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> int:
+        clear = self.clear_above
+        assert clear is not None  # skims() says so
+        score, slack = self._scores(rows, a, b)
+        signed = score * rows.signs(ys)[a:b]
+        slack += (rows.widest + 4) * SLACK * abs(clear)
         return first_false(signed > clear + slack)
 
     def _absorb(self, rows: Rows, ys: np.ndarray, a: int, b: int) -> None:
@@ -125,17 +131,7 @@ class LinearLearner(Learner):
     def _rows_votes(self, rows: Rows, a: int, b: int) -> tuple[np.ndarray, np.ndarray] | None:
         if self.clear_above is None:
             return None  # averaged and voted predict with other weights
-        if len(self._w) < len(self.space.names):
-            self._grow()
-        lo, hi = rows.span(a, b)
-        terms = self._w[rows.keys[lo:hi]]
-        if rows.vals is not None:
-            terms = terms * rows.vals[lo:hi]
-        bias = self._b * self._c
-        score = rows.sums(terms, a, b) + bias
-        top = float(np.abs(terms).max()) if hi > lo else 0.0
-        n = rows.widest
-        slack = (n + 4) * SLACK * (n * top + abs(bias))
+        score, slack = self._scores(rows, a, b)
         return score > 0.0, np.abs(score) > slack
 
     @abstractmethod

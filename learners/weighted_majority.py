@@ -308,12 +308,7 @@ class WeightedMajority(Learner):
         # The weights stay (no master mistake); every rule's mistakes move, as _count_label
         # moves them label by label: in bulk when the flags stored are few enough.
         slots, owner = self._rows_slots(rows, a, b)
-        d = self._d
-        if self._map is None and len(d) < len(self.space.names):
-            d = self._d = ensure_length(d, len(self.space.names), 0)
-            self._on1 = ensure_length(self._on1, len(self.space.names), 0)
-            if self._spread is not None:
-                self._spread.values = d
+        d = self._grown_counts()
         if self._spread is not None and len(d) > max(BULK_SCAN, BULK_RATIO * len(slots)):
             for k in range(a, b):
                 self._count_label(self._slots(rows.encs[k]), int(ys[k]))
@@ -329,15 +324,20 @@ class WeightedMajority(Learner):
         if self._spread is not None:
             self._spread = Spread(d, live=True)  # as _restore builds it: from D alone
 
-    def _count_label(self, slots: np.ndarray, y: int) -> None:
-        """Every rule's mistakes after one more label: the balances ``D`` of the item's flags,
-        the label counts and the spread of ``D``."""
+    def _grown_counts(self) -> np.ndarray:
+        """``D`` (and ``P_on``) grown to every name the space has admitted; returns ``D``."""
         d = self._d
         if self._map is None and len(d) < len(self.space.names):
             d = self._d = ensure_length(d, len(self.space.names), 0)
             self._on1 = ensure_length(self._on1, len(self.space.names), 0)
             if self._spread is not None:
                 self._spread.values = d
+        return d
+
+    def _count_label(self, slots: np.ndarray, y: int) -> None:
+        """Every rule's mistakes after one more label: the balances ``D`` of the item's flags,
+        the label counts and the spread of ``D``."""
+        d = self._grown_counts()
         old = d[slots]
         if y:
             self.labels1 += 1

@@ -177,6 +177,16 @@ def test_elimination_keeps_its_masks_in_step_with_names_admitted_between_batches
         assert skimmer.to_state() == plain.to_state()
 
 
+def assert_votes_agree(learner: learners.Learner, data: list[tuple[Any, int]], size: int) -> None:
+    """Vote on each batch of ``size`` at once and item by item, then learn it item by item."""
+    for start in range(0, len(data), size):
+        batch = data[start : start + size]
+        encs = [learner.encode(item) for item, _ in batch]
+        assert learner.predict_rows(Rows(encs)) == [learner.predict_checked(e) for e in encs]
+        for enc, (_, label) in zip(encs, batch, strict=True):
+            learner.learn_checked(enc, label)
+
+
 @pytest.mark.parametrize(("kind", "params"), CASES)
 @pytest.mark.parametrize("flags_only", [False, True])
 def test_votes_on_a_batch_are_the_votes_item_by_item(
@@ -187,25 +197,12 @@ def test_votes_on_a_batch_are_the_votes_item_by_item(
     data = stream(seed=13, length=600)
     if flags_only:
         data = [({k: 1.0 for k in item if k != "signal"}, label) for item, label in data]
-    learner = learners.make(kind, features=50, **params)
-    for start in range(0, len(data), 100):
-        batch = data[start : start + 100]
-        encs = [learner.encode(item) for item, _ in batch]
-        assert learner.predict_rows(Rows(encs)) == [learner.predict_checked(e) for e in encs]
-        for enc, (_, label) in zip(encs, batch, strict=True):
-            learner.learn_checked(enc, label)
+    assert_votes_agree(learners.make(kind, features=50, **params), data, 100)
 
 
 @pytest.mark.parametrize(("kind", "params"), TIE_CASES)
 def test_votes_on_exact_ties_are_the_votes_item_by_item(kind: str, params: dict[str, Any]) -> None:
-    data = tie_stream(seed=6, length=1500)
-    learner = learners.make(kind, features=6, **params)
-    for start in range(0, len(data), 50):
-        batch = data[start : start + 50]
-        encs = [learner.encode(item) for item, _ in batch]
-        assert learner.predict_rows(Rows(encs)) == [learner.predict_checked(e) for e in encs]
-        for enc, (_, label) in zip(encs, batch, strict=True):
-            learner.learn_checked(enc, label)
+    assert_votes_agree(learners.make(kind, features=6, **params), tie_stream(6, 1500), 50)
 
 
 # Weights whose sum numpy (pairwise, eight at a time) and a running sum round differently: the

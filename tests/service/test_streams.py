@@ -61,6 +61,30 @@ def test_the_digest_is_the_defined_one_for_unusual_items() -> None:
     assert fingerprint(["b", "a"]) == fingerprint({"a": 1, "b": 1.0, "c": 0})
 
 
+def stream_config(
+    learners_: list[dict[str, Any]],
+    serve: str,
+    *,
+    features: int = 6,
+    wait: float = 1e9,
+    policy: str = "keep",
+) -> dict[str, Any]:
+    """A stream's configuration as the registry stores it."""
+    return {
+        "stream": "s",
+        "features": features,
+        "learners": learners_,
+        "serve": serve,
+        "label_wait_seconds": wait,
+        "on_exceed": policy,
+        "near": 0.8,
+        "webhook": None,
+    }
+
+
+ELIM_ONLY = [{"name": "elim", "kind": "elimination", "params": {}}]
+
+
 def two_learner_stream(names: tuple[str, str]) -> Stream:
     config = {
         "stream": "s",
@@ -120,28 +144,24 @@ SKIP_PANEL = [
 
 
 def panel_stream() -> Stream:
-    config = {
-        "stream": "s",
-        "features": 6,
-        "learners": SKIP_PANEL,
-        "serve": "elim",
-        "label_wait_seconds": 1e9,
-        "on_exceed": "keep",
-        "near": 0.8,
-        "webhook": None,
-    }
+    config = stream_config(SKIP_PANEL, "elim")
     return Stream(config, 0.0, history_points=50, max_remembered=10**6)
 
 
-STEPS = st.lists(
-    st.tuples(
-        st.sampled_from(["predict", "feedback", "examples", "restore"]),
-        st.integers(min_value=1, max_value=6),
-        st.integers(min_value=0, max_value=2**32 - 1),
-    ),
-    min_size=1,
-    max_size=60,
-)
+def step_lists(kinds: list[str], largest: int, most: int) -> st.SearchStrategy[list[Any]]:
+    """Lists of (what, how many, seed) steps for the stream tests."""
+    return st.lists(
+        st.tuples(
+            st.sampled_from(kinds),
+            st.integers(min_value=1, max_value=largest),
+            st.integers(min_value=0, max_value=2**32 - 1),
+        ),
+        min_size=1,
+        max_size=most,
+    )
+
+
+STEPS = step_lists(["predict", "feedback", "examples", "restore"], 6, 60)
 
 
 @settings(max_examples=200, deadline=None)
@@ -220,15 +240,7 @@ ALERT_PANEL = [
     {"name": "halving", "kind": "halving", "params": {"rules": [["f0"], ["f1"], ["!f2"]]}},
 ]
 
-BATCH_STEPS = st.lists(
-    st.tuples(
-        st.sampled_from(["predict", "feedback", "examples"]),
-        st.integers(min_value=1, max_value=40),
-        st.integers(min_value=0, max_value=2**32 - 1),
-    ),
-    min_size=1,
-    max_size=25,
-)
+BATCH_STEPS = step_lists(["predict", "feedback", "examples"], 40, 25)
 
 
 def seed_of(steps: list[tuple[str, int, int]]) -> int:
@@ -251,16 +263,7 @@ def test_a_skimmed_batch_leaves_the_ledger_of_one_item_at_a_time(
     same stream learning one item at a time, with small ceilings and noisy labels so that
     learners cross them, raise alerts and (policy restart) start new epochs mid-batch: the same
     answers, the same outcomes, the same alerts in the same order, the same stored state."""
-    config = {
-        "stream": "s",
-        "features": 6,
-        "learners": ALERT_PANEL,
-        "serve": "perc",
-        "label_wait_seconds": 1e9,
-        "on_exceed": policy,
-        "near": 0.8,
-        "webhook": None,
-    }
+    config = stream_config(ALERT_PANEL, "perc", policy=policy)
     skimming = Stream(config, 0.0, history_points=8, max_remembered=10**6)
     skimming.at_once = 1 + seed_of(steps) % 3  # batches of one item and up skim and vote at once
     single = Stream(config, 0.0, history_points=8, max_remembered=10**6)
@@ -296,15 +299,7 @@ def test_a_skimmed_batch_leaves_the_ledger_of_one_item_at_a_time(
         assert skimming.to_state() == single.to_state()
 
 
-EXPIRY_STEPS = st.lists(
-    st.tuples(
-        st.sampled_from(["predict", "feedback", "examples", "wait"]),
-        st.integers(min_value=1, max_value=30),
-        st.integers(min_value=0, max_value=2**32 - 1),
-    ),
-    min_size=1,
-    max_size=40,
-)
+EXPIRY_STEPS = step_lists(["predict", "feedback", "examples", "wait"], 30, 40)
 
 
 @settings(max_examples=80, deadline=None)
@@ -315,16 +310,7 @@ def test_expiry_and_forgetting_follow_arrival_order(steps: list[tuple[str, int, 
     says; here against a plain model of those two rules (ordered lists), across labels that
     leave holes, ids reused after they are forgotten, and restores from a snapshot."""
     wait, bound = 10.0, 25
-    config = {
-        "stream": "s",
-        "features": 6,
-        "learners": [{"name": "elim", "kind": "elimination", "params": {}}],
-        "serve": "elim",
-        "label_wait_seconds": wait,
-        "on_exceed": "keep",
-        "near": 0.8,
-        "webhook": None,
-    }
+    config = stream_config(ELIM_ONLY, "elim", wait=wait)
     stream = Stream(config, 0.0, history_points=8, max_remembered=bound)
     waiting: list[tuple[str, float]] = []  # the model: (id, predicted at), in arrival order
     remembered: list[tuple[str, float]] = []  # (id, resolved at)
@@ -376,16 +362,7 @@ def test_expiry_and_forgetting_follow_arrival_order(steps: list[tuple[str, int, 
 def test_labelled_predictions_leave_the_expiry_queue_short() -> None:
     # A label leaves its prediction's entry in the queue of waiting predictions; once such
     # entries outnumber the waiting ones (twice, plus 1024) the queue is rebuilt, in order.
-    config = {
-        "stream": "s",
-        "features": 6,
-        "learners": [{"name": "elim", "kind": "elimination", "params": {}}],
-        "serve": "elim",
-        "label_wait_seconds": 100.0,
-        "on_exceed": "keep",
-        "near": 0.8,
-        "webhook": None,
-    }
+    config = stream_config(ELIM_ONLY, "elim", wait=100.0)
     stream = Stream(config, 0.0, history_points=8, max_remembered=10**6)
     for k in range(30):
         stream.apply_predict(1.0 + k, [(f"p{k}-{j}", ["f0"]) for j in range(100)])
