@@ -393,6 +393,8 @@ class Stream:
         """Apply labels in order; each gets a status: applied, duplicate, conflict, unknown,
         expired. Only ``applied`` changes anything."""
         t = self.advance(t)
+        if len(items) < self.at_once or not self.skim:
+            return self._feedback_one_by_one(t, items)
         out: list[dict[str, Any] | None] = []
         applied: list[int] = []
         taken: list[Pending] = []
@@ -432,6 +434,28 @@ class Stream:
         self.advance(t)  # keeps the remembered ids within their bound
         assert None not in out
         return cast(list[dict[str, Any]], out)
+
+    def _feedback_one_by_one(
+        self, t: float, items: Sequence[tuple[str, int]]
+    ) -> list[dict[str, Any]]:
+        """:meth:`apply_feedback` item by item (a batch too small to skim, or skimming off)."""
+        out = []
+        for item_id, y in items:
+            p = self.pending.pop(item_id, None)
+            if p is None:
+                out.append(self._not_pending(item_id, y))
+                continue
+            wrong, updated = self._learn_one(t, item_id, p.enc, y, p)
+            delay = t - p.t if t > p.t else 0.0
+            self.delay_sum += delay
+            self.delay_buckets[bisect_left(DELAY_BUCKETS, delay)] += 1
+            self._remember(item_id, Resolved("labelled", t, p.fp, y, p.votes, wrong, updated))
+            self.counts["labels"] += 1
+            out.append(self._outcome(item_id, "applied", wrong, updated))
+        for seat in self.seats:
+            seat.close_batch(t)
+        self.advance(t)  # keeps the remembered ids within their bound
+        return out
 
     def apply_examples(
         self, t: float, items: Sequence[tuple[str, Features, int]], checked: bool = False
@@ -500,22 +524,31 @@ class Stream:
         learners that were wrong and of those that updated.
 
         ``taken``: the predictions the labels are for (None: labelled examples, never predicted;
-        "wrong" is then the hypothesis at label time, else the vote). Learner by learner (they
-        do not read each other), the items a learner certainly gets right and keeps are skimmed
+        "wrong" is then the hypothesis at label time, else the vote). A batch under ``at_once``
+        items goes item by item (:meth:`_learn_one`). A larger one goes learner by learner (they
+        do not read each other): the items a learner certainly gets right and keeps are skimmed
         (``Learner.skim``) and counted in bulk, served mistakes among them included; the others
         go one by one. The ledger ends exactly as it would item by item: over skimmed items
         nothing the standing reads moves towards an alert, so one settle after them decides
         what one per item would; the history gets a point at each update and one at the end of
         the batch (``Seat.close_batch``).
         """
-        batch = _Labelled(t, ids, encs, ys, taken)
-        if (
+        if not (
             self.skim
             and len(encs) >= self.at_once
             and any(seat.learner.skims() for seat in self.seats)
         ):
-            batch.rows = Rows(encs)
-        if taken is not None and batch.rows is not None:
+            bits = [
+                self._learn_one(t, ids[k], encs[k], ys[k], None if taken is None else taken[k])
+                for k in range(len(encs))
+            ]
+            if taken is not None:  # (examples find no served mistakes)
+                for seat in self.seats:
+                    seat.close_batch(t)
+            return bits
+        batch = _Labelled(t, ids, encs, ys, taken)
+        batch.rows = Rows(encs)
+        if taken is not None:
             width = len(self.seats)
             batch.votes = np.array([p.votes for p in taken], dtype=np.int8).reshape(-1, width)
             batch.epochs = np.array([p.epochs for p in taken], dtype=np.int64).reshape(-1, width)
@@ -526,15 +559,59 @@ class Stream:
             self._alerted(alert)  # in the order item by item would raise them
         return list(zip(batch.wrong, batch.updated, strict=True))
 
+    def _learn_one(
+        self, t: float, item_id: str, enc: Encoded, y: int, p: Pending | None
+    ) -> tuple[int, int]:
+        """Every learner learns one labelled item (a batch too small to skim, or skimming
+        off); returns the bits of the learners that were wrong and of those that updated."""
+        wrong_bits = updated_bits = 0
+        policy = self.policy
+        if p is None:  # a labelled example: "wrong" is the hypothesis at label time
+            for i, seat in enumerate(self.seats):
+                wrong, updated = seat.learn(item_id, enc, y)
+                if updated:
+                    seat.changed_at = self.counts["predictions"]
+                wrong_bits |= wrong << i
+                updated_bits |= updated << i
+                alert = seat.settle(t, updated, policy)
+                if alert is not None:
+                    self._alerted(alert)
+            return wrong_bits, updated_bits
+        votes, epochs = p.votes, p.epochs
+        served_wrong = votes[self.serve_index] != y
+        for i, seat in enumerate(self.seats):
+            same_epoch = epochs[i] == seat.epoch
+            if same_epoch:
+                seat.outstanding -= 1
+            vote_wrong = votes[i] != y
+            seat.observe_vote(vote_wrong, served_wrong, same_epoch)
+            wrong_bits |= vote_wrong << i
+            # Its vote was right and it has not updated since: it still predicts the label.
+            right = (
+                not vote_wrong
+                and same_epoch
+                and seat.changed_at <= p.seq
+                and seat.learner.changes_only_on_update
+            )
+            _, updated = seat.learn(item_id, enc, y, right)
+            if updated:
+                seat.changed_at = self.counts["predictions"]
+            updated_bits |= updated << i
+            alert = seat.settle(t, updated, policy)
+            if alert is not None:
+                self._alerted(alert)
+        return wrong_bits, updated_bits
+
     def _seat_learns(self, i: int, batch: _Labelled) -> None:
-        """One learner's share of :meth:`_learn_many`."""
+        """One learner's share of :meth:`_learn_many` for a batch it skims."""
         seat, n, t, policy = self.seats[i], len(batch.encs), batch.t, self.policy
         ys, taken, wrong, updated = batch.ys, batch.taken, batch.wrong, batch.updated
         bit = 1 << i
         tallies: tuple[list[int], ...] = ()
-        skimming = batch.rows is not None
         serve = self.serve_index
-        if taken is not None and skimming:
+        rows = batch.rows
+        assert rows is not None
+        if taken is not None:
             assert batch.votes is not None and batch.served_wrong is not None
             vote_wrong = batch.votes[:, i] != batch.labels
             served_wrong = batch.served_wrong
@@ -550,7 +627,7 @@ class Stream:
         while k < n:
             if seat.epoch != epoch:  # first, and after a restart: which votes are this epoch's
                 epoch = seat.epoch
-                if taken is not None and skimming:
+                if taken is not None:
                     assert batch.epochs is not None
                     this_epoch = batch.epochs[:, i] == epoch
                     tallies = (
@@ -558,10 +635,7 @@ class Stream:
                         np.concatenate(([0], np.cumsum(this_epoch))).tolist(),
                         np.concatenate(([0], np.cumsum(this_epoch & vote_wrong))).tolist(),
                     )
-            j = k
-            if skimming:
-                assert batch.rows is not None
-                j = seat.learner.skim(batch.rows, batch.labels, k, n)
+            j = seat.learner.skim(rows, batch.labels, k, n)
             if j > k:
                 if taken is not None:
                     seat.pass_votes(j - k, *(counts[j] - counts[k] for counts in tallies))
@@ -583,9 +657,7 @@ class Stream:
                 same_epoch = p.epochs[i] == seat.epoch
                 if same_epoch:
                     seat.outstanding -= 1
-                voted_wrong = p.votes[i] != y
-                if voted_wrong and not skimming:  # (skimming: set above for every item)
-                    wrong[j] |= bit
+                voted_wrong = p.votes[i] != y  # (its wrong bit is set above)
                 seat.observe_vote(voted_wrong, p.votes[serve] != y, same_epoch)
                 # Its vote was right and it has not updated since: it still predicts the label.
                 right = (
@@ -602,7 +674,8 @@ class Stream:
             if alert is not None:
                 batch.alerts.append((j, i, alert))
             k = j + 1
-        seat.close_batch(t)
+        if taken is not None:  # (examples find no served mistakes)
+            seat.close_batch(t)
 
     def _alerted(self, alert: dict[str, Any]) -> None:
         self.new_alerts.append(alert)
