@@ -492,23 +492,23 @@ class Stream:
                 raise ItemError(index, self._reused(item_id, "before"))
         features = [items[i][1] for i in fresh]
         encoded, _ = self._encode(features, fresh, vote=False, checked=checked)
-        done: dict[str, dict[str, Any]] = {}
         ids = [items[i][0] for i in fresh]
         bits = self._learn_many(t, ids, encoded, [items[i][2] for i in fresh], None)
+        out: list[dict[str, Any] | None] = [None] * len(items)
+        resolved, remembered, outcome = self.resolved, self._remembered, self._outcome
         for index, (wrong, updated) in zip(fresh, bits, strict=True):
             item_id, _, y = items[index]
-            self._remember(item_id, Resolved("example", t, prints[index], y, None, wrong, updated))
-            self.counts["examples"] += 1
-            done[item_id] = self._outcome(item_id, "applied", wrong, updated)
-        out = []
-        for item_id, _, _ in items:
-            if item_id in done:
-                out.append(done.pop(item_id))
-            else:
-                r = self.resolved[item_id]
-                out.append(self._outcome(item_id, "duplicate", r.wrong, r.updated))
+            resolved[item_id] = Resolved("example", t, prints[index], y, None, wrong, updated)
+            remembered.append(item_id)  # as _remember does
+            out[index] = outcome(item_id, "applied", wrong, updated)
+        self.counts["examples"] += len(fresh)
+        if len(fresh) < len(items):  # the others were learned before, here or earlier
+            for index, (item_id, _, _) in enumerate(items):
+                if out[index] is None:
+                    r = resolved[item_id]
+                    out[index] = outcome(item_id, "duplicate", r.wrong, r.updated)
         self.advance(t)
-        return out
+        return cast(list[dict[str, Any]], out)
 
     # -- the accounting step ---------------------------------------------------------------
 
