@@ -28,6 +28,7 @@ bench: $(BIN)/.installed
 	$(BIN)/python -m benchmarks.learners
 	$(BIN)/python -m benchmarks.service
 	$(BIN)/python -m benchmarks.transfer
+	$(BIN)/python -m benchmarks.at_once
 
 clean:
 	rm -rf $(VENV) .pytest_cache .mypy_cache .ruff_cache

@@ -38,10 +38,14 @@ from service.errors import Conflict, InvalidInput
 Features = Mapping[str, float] | Sequence[str]
 
 VIEW_CACHE = 64  # distinct vote / outcome views kept per stream
-# Batches of at least this many items are voted and learned by each learner at once (screens
-# over the whole batch, ``Learner.skim``, ``Learner.predict_rows``); smaller ones item by item,
-# where the screens' fixed cost would outweigh what they save. The same answers either way.
-BATCH_AT_ONCE = 16
+# Predict and examples batches of at least BATCH_AT_ONCE items, and feedback batches of at least
+# FEEDBACK_AT_ONCE, are voted and learned by each learner at once (screens over the whole batch,
+# ``Learner.predict_rows``, ``Learner.skim``); smaller ones item by item, where the screens'
+# fixed cost outweighs what they save (where each pays: ``python -m benchmarks.at_once``;
+# feedback's item-by-item step is cheaper, as a stream knows when a vote still stands). The
+# same answers either way.
+BATCH_AT_ONCE = 8
+FEEDBACK_AT_ONCE = 24
 
 # Label delay histogram buckets in seconds (one second to thirty days).
 DELAY_BUCKETS = (
@@ -265,9 +269,10 @@ class Stream:
         self.new_alerts: list[dict[str, Any]] = []
         # Learn labelled batches by skimming (Learner.skim); False: one item at a time (the
         # same ledger; kept for the tests that compare the two). Batches of at least
-        # ``at_once`` items are skimmed and voted on at once.
+        # ``at_once`` items (``feedback_at_once`` for feedback) go at once.
         self.skim = True
         self.at_once = BATCH_AT_ONCE
+        self.feedback_at_once = FEEDBACK_AT_ONCE
         # Bookkeeping for the registry and the store.
         self.lock = threading.RLock()
         self.deleted = False
@@ -393,7 +398,7 @@ class Stream:
         """Apply labels in order; each gets a status: applied, duplicate, conflict, unknown,
         expired. Only ``applied`` changes anything."""
         t = self.advance(t)
-        if len(items) < self.at_once or not self.skim:
+        if len(items) < self.feedback_at_once or not self.skim:
             return self._feedback_one_by_one(t, items)
         out: list[dict[str, Any] | None] = []
         applied: list[int] = []
@@ -525,17 +530,17 @@ class Stream:
 
         ``taken``: the predictions the labels are for (None: labelled examples, never predicted;
         "wrong" is then the hypothesis at label time, else the vote). A batch under ``at_once``
-        items goes item by item (:meth:`_learn_one`). A larger one goes learner by learner (they
-        do not read each other): the items a learner certainly gets right and keeps are skimmed
-        (``Learner.skim``) and counted in bulk, served mistakes among them included; the others
-        go one by one. The ledger ends exactly as it would item by item: over skimmed items
-        nothing the standing reads moves towards an alert, so one settle after them decides
-        what one per item would; the history gets a point at each update and one at the end of
-        the batch (``Seat.close_batch``).
+        items (``feedback_at_once`` for feedback) goes item by item (:meth:`_learn_one`). A
+        larger one goes learner by learner (they do not read each other): the items a learner
+        certainly gets right and keeps are skimmed (``Learner.skim``) and counted in bulk,
+        served mistakes among them included; the others go one by one. The ledger ends exactly
+        as it would item by item: over skimmed items nothing the standing reads moves towards an
+        alert, so one settle after them decides what one per item would; the history gets a
+        point at each update and one at the end of the batch (``Seat.close_batch``).
         """
         if not (
             self.skim
-            and len(encs) >= self.at_once
+            and len(encs) >= (self.at_once if taken is None else self.feedback_at_once)
             and any(seat.learner.skims() for seat in self.seats)
         ):
             bits = [

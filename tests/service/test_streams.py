@@ -176,7 +176,7 @@ def test_the_panel_learns_as_each_learner_would_alone(steps: list[tuple[str, int
     # The reference is the learners' own public protocol (learners.base: predict and learn),
     # with DESIGN.md's accounting: each label's "wrong" is the vote cast at predict time.
     stream = panel_stream()
-    stream.at_once = 1  # every batch voted and learned at once, however small
+    stream.at_once = stream.feedback_at_once = 1  # every batch at once, however small
     space = learners.FeatureSpace(6)
     alone = [learners.make(spec["kind"], features=space, **spec["params"]) for spec in SKIP_PANEL]
     flags = [f"f{i}" for i in range(6)]
@@ -189,7 +189,7 @@ def test_the_panel_learns_as_each_learner_would_alone(steps: list[tuple[str, int
         if kind == "restore":
             state = json.loads(json.dumps(stream.to_state()))
             stream = Stream.from_state(state, history_points=50, max_remembered=10**6)
-            stream.at_once = 1  # every batch voted and learned at once, however small
+            stream.at_once = stream.feedback_at_once = 1  # every batch at once, however small
             continue
         if kind == "feedback":
             ids = rng.sample(sorted(waiting), min(size, len(waiting)))
@@ -265,10 +265,10 @@ def test_a_skimmed_batch_leaves_the_ledger_of_one_item_at_a_time(
     answers, the same outcomes, the same alerts in the same order, the same stored state."""
     config = stream_config(ALERT_PANEL, "perc", policy=policy)
     skimming = Stream(config, 0.0, history_points=8, max_remembered=10**6)
-    skimming.at_once = 1 + seed_of(steps) % 3  # batches of one item and up skim and vote at once
+    skimming.at_once = skimming.feedback_at_once = 1 + seed_of(steps) % 3  # small batches too
     single = Stream(config, 0.0, history_points=8, max_remembered=10**6)
     single.skim = False
-    single.at_once = 10**9
+    single.at_once = single.feedback_at_once = 10**9
     flags = [f"f{i}" for i in range(6)]
     waiting: list[str] = []
     count = 0
