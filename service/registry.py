@@ -29,8 +29,6 @@ from collections.abc import Callable, Sequence
 from concurrent.futures import Future
 from typing import Any
 
-import orjson
-
 import learners
 from learners import FeatureSpace, LearnerError
 from service.bodies import contains_non_finite
@@ -45,7 +43,7 @@ from service.errors import (
 )
 from service.schemas import StreamCreate
 from service.settings import Settings
-from service.store import Store, StoreFailed
+from service.store import Store, StoreFailed, dumps
 from service.streams import Features, ItemError, Stream
 
 log = logging.getLogger("mistake_ledger.registry")
@@ -517,17 +515,14 @@ class Registry:
 def state_text(state: dict[str, Any]) -> str:
     """A stream's state (``Stream.to_state``) as the JSON text of a snapshot or an export.
 
-    orjson writes it, several times faster than the json module (the snapshot holds up the
-    stream's requests while it is written); the json module writes what orjson cannot
-    (integers past 64 bits). A snapshot never holds NaN or infinity: the learners' part, where
-    a fault could put one, is checked first with the json module (allow_nan=False), which
-    raises ValueError; the rest is validated input, clock times and counts.
+    Written as log records are (``service.store.dumps``: orjson, several times faster than the
+    json module; a snapshot holds up the stream's requests while it is written). A snapshot
+    never holds NaN or infinity: the learners' part, where a fault could put one, is checked
+    first with the json module (allow_nan=False), which raises ValueError; the rest is
+    validated input, clock times and counts.
     """
     json.dumps(state["seats"], allow_nan=False)
-    try:
-        return orjson.dumps(state).decode()
-    except TypeError:
-        return json.dumps(state, separators=(",", ":"), allow_nan=False)
+    return dumps(state)
 
 
 def _located(exc: ItemError, batch: bool) -> ServiceError:

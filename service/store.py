@@ -65,9 +65,10 @@ class _Job:
 _json_dumps = json.JSONEncoder(separators=(",", ":"), allow_nan=False).encode
 
 
-def _dumps(body: Any) -> str:
-    """A log record's JSON text: orjson's (the same values, read back by any JSON reader), or
-    the json module's for what orjson does not write (integers past 64 bits)."""
+def dumps(body: Any) -> str:
+    """Compact JSON text of a log record or a stream's state: orjson's (the same values, read
+    back by any JSON reader), or the json module's for what orjson does not write (integers past
+    64 bits). orjson writes NaN and infinity as null: callers hand it none."""
     try:
         return orjson.dumps(body).decode()
     except TypeError:
@@ -230,7 +231,7 @@ class Store:
             rows: list[tuple[int, str, str]] = []  # events not inserted yet, in order
             for job in batch:
                 if job.kind == "event":
-                    rows.append((job.seq, job.stream, _dumps(job.body)))
+                    rows.append((job.seq, job.stream, dumps(job.body)))
                     continue
                 if rows:
                     conn.executemany(_INSERT, rows)

@@ -570,42 +570,40 @@ class Stream:
         """Every learner learns one labelled item (a batch too small to skim, or skimming
         off); returns the bits of the learners that were wrong and of those that updated."""
         wrong_bits = updated_bits = 0
-        policy = self.policy
-        if p is None:  # a labelled example: "wrong" is the hypothesis at label time
-            for i, seat in enumerate(self.seats):
-                wrong, updated = seat.learn(item_id, enc, y)
-                if updated:
-                    seat.changed_at = self.counts["predictions"]
-                wrong_bits |= wrong << i
-                updated_bits |= updated << i
-                alert = seat.settle(t, updated, policy)
-                if alert is not None:
-                    self._alerted(alert)
-            return wrong_bits, updated_bits
-        votes, epochs = p.votes, p.epochs
-        served_wrong = votes[self.serve_index] != y
         for i, seat in enumerate(self.seats):
-            same_epoch = epochs[i] == seat.epoch
+            wrong, updated = self._seat_step(i, seat, item_id, enc, y, p)
+            wrong_bits |= wrong << i
+            updated_bits |= updated << i
+            alert = seat.settle(t, updated, self.policy)
+            if alert is not None:
+                self._alerted(alert)
+        return wrong_bits, updated_bits
+
+    def _seat_step(
+        self, i: int, seat: Seat, item_id: str, enc: Encoded, y: int, p: Pending | None
+    ) -> tuple[bool, bool]:
+        """Learner ``i`` learns one labelled item (its settle is the caller's); returns (wrong,
+        updated). ``p``: the prediction the label is for; None for a labelled example, whose
+        "wrong" is the hypothesis at label time (else the vote)."""
+        if p is None:
+            wrong, updated = seat.learn(item_id, enc, y)
+        else:
+            same_epoch = p.epochs[i] == seat.epoch
             if same_epoch:
                 seat.outstanding -= 1
-            vote_wrong = votes[i] != y
-            seat.observe_vote(vote_wrong, served_wrong, same_epoch)
-            wrong_bits |= vote_wrong << i
+            wrong = p.votes[i] != y
+            seat.observe_vote(wrong, p.votes[self.serve_index] != y, same_epoch)
             # Its vote was right and it has not updated since: it still predicts the label.
             right = (
-                not vote_wrong
+                not wrong
                 and same_epoch
                 and seat.changed_at <= p.seq
                 and seat.learner.changes_only_on_update
             )
             _, updated = seat.learn(item_id, enc, y, right)
-            if updated:
-                seat.changed_at = self.counts["predictions"]
-            updated_bits |= updated << i
-            alert = seat.settle(t, updated, policy)
-            if alert is not None:
-                self._alerted(alert)
-        return wrong_bits, updated_bits
+        if updated:
+            seat.changed_at = self.counts["predictions"]
+        return wrong, updated
 
     def _seat_learns(self, i: int, batch: _Labelled) -> None:
         """One learner's share of :meth:`_learn_many` for a batch it skims."""
@@ -613,7 +611,6 @@ class Stream:
         ys, taken, wrong, updated = batch.ys, batch.taken, batch.wrong, batch.updated
         bit = 1 << i
         tallies: tuple[list[int], ...] = ()
-        serve = self.serve_index
         rows = batch.rows
         assert rows is not None
         if taken is not None:
@@ -652,28 +649,11 @@ class Stream:
                     continue  # a restart: which votes are this epoch's, before item j
             if j == n:
                 break
-            y, enc, item_id = ys[j], batch.encs[j], batch.ids[j]
-            if taken is None:  # a labelled example: "wrong" is the hypothesis at label time
-                was_wrong, did_update = seat.learn(item_id, enc, y)
-                if was_wrong:
-                    wrong[j] |= bit
-            else:
-                p = taken[j]
-                same_epoch = p.epochs[i] == seat.epoch
-                if same_epoch:
-                    seat.outstanding -= 1
-                voted_wrong = p.votes[i] != y  # (its wrong bit is set above)
-                seat.observe_vote(voted_wrong, p.votes[serve] != y, same_epoch)
-                # Its vote was right and it has not updated since: it still predicts the label.
-                right = (
-                    not voted_wrong
-                    and same_epoch
-                    and seat.changed_at <= p.seq
-                    and seat.learner.changes_only_on_update
-                )
-                _, did_update = seat.learn(item_id, enc, y, right)
+            p = None if taken is None else taken[j]
+            was_wrong, did_update = self._seat_step(i, seat, batch.ids[j], batch.encs[j], ys[j], p)
+            if was_wrong:
+                wrong[j] |= bit
             if did_update:
-                seat.changed_at = self.counts["predictions"]
                 updated[j] |= bit
             alert = seat.settle(t, did_update, policy)
             if alert is not None:

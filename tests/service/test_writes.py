@@ -32,7 +32,7 @@ from service.app import create_app
 from service.bodies import NonFinite, quick_examples, quick_feedback, quick_predict
 from service.settings import Settings
 from service.store import Store
-from service.store import _dumps as store_dumps
+from service.store import dumps as store_dumps
 from service.writes import FastWrites, render
 from tests.service.harness import Clock, Running, running
 
