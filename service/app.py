@@ -1,4 +1,4 @@
-"""The HTTP application: ``create_app(settings, *, clock=None, registry=None) -> FastAPI``.
+"""The HTTP application: ``create_app(settings, *, clock=None, registry=None) -> LedgerApp``.
 
 Routes (JSON under ``/v1``; errors in the one shape of ``service.errors``)::
 
@@ -22,10 +22,9 @@ apps in one process. The store opens and replays in the lifespan's startup, and 
 snapshots every stream and closes it.
 
 The ordinary requests of predict, feedback and examples are answered by
-``service.writes.FastWrites`` before the routes, with the same work and the same answers; the
-routes below serve everything else (every refusal of a body, token or state) and make the
-OpenAPI document.
-"""
+``service.writes.FastWrites`` in front of the framework (``LedgerApp``), with the same work and the
+same answers; the routes below serve everything else (every refusal of a body, token or state) and
+make the OpenAPI document."""
 
 from __future__ import annotations
 
@@ -33,6 +32,7 @@ import json
 import time
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
+from functools import partial
 from typing import Any
 
 from fastapi import APIRouter, Depends, FastAPI, Request, Response
@@ -145,12 +145,25 @@ class BodyLimit:
         await JSONResponse(body, status_code=413)(scope, receive, send)
 
 
+class LedgerApp(FastAPI):
+    """The FastAPI app behind :class:`~service.writes.FastWrites`, which answers the write
+    routes' ordinary requests before the framework's own layers (when ``fast_writes`` is set)."""
+
+    fast_writes: FastWrites | None = None
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if self.fast_writes is None:
+            await super().__call__(scope, receive, send)
+        else:
+            await self.fast_writes(scope, receive, send)
+
+
 def create_app(
     settings: Settings | None = None,
     *,
     clock: Callable[[], float] | None = None,
     registry: CollectorRegistry | None = None,
-) -> FastAPI:
+) -> LedgerApp:
     """A new application with its own store, metrics registry and clock."""
     settings = settings if settings is not None else Settings.from_env()
     clock = clock if clock is not None else time.time
@@ -182,7 +195,7 @@ def create_app(
             await run_in_threadpool(streams.close)
             await run_in_threadpool(sender.close)
 
-    app = FastAPI(
+    app = LedgerApp(
         title="mistake-ledger",
         version=VERSION,
         description="Online learners per stream with a live ledger of mistakes against "
@@ -195,9 +208,15 @@ def create_app(
     app.state.sender = sender
     errors.install(app)
     writes = Writes(streams, guard)
-    # Ordinary predict/feedback/examples requests are answered here; all else goes on to the
-    # routes (service/writes.py). Added first, so it runs inside the body limit.
-    app.add_middleware(FastWrites, writes=writes, guard=guard, ready=lambda: streams.ready)
+    # Ordinary predict/feedback/examples requests are answered in front of the framework; all
+    # else goes on to it and its routes (service/writes.py).
+    app.fast_writes = FastWrites(
+        partial(FastAPI.__call__, app),
+        writes=writes,
+        guard=guard,
+        ready=lambda: streams.ready,
+        limit=settings.max_body_bytes,
+    )
     app.add_middleware(
         BodyLimit,
         limit=settings.max_body_bytes,

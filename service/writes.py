@@ -5,26 +5,31 @@ do once the body is read: check the token's scope, apply the items to the stream
 (``service.registry``) and wait until their event is committed. The routes in ``service.app``
 call it with the body their request model validated.
 
-:class:`FastWrites` (ASGI middleware, inside the body limit) answers the ordinary requests of
-those three routes before the framework sees them: a POST to one of their paths with an
-``application/json`` body that ``bodies.quick_*`` reads as plainly valid, a token the guard
-knows (or none needed) and the store ready. It does the same work with the same items
-(:class:`Writes`) and sends the same JSON; a domain or learner error raised by that work gets
-the one error shape, as the route's handlers give it. Every other request (another path or
-method, another content type, a body the quick readers leave to the model, a missing or unknown
-token, a store not ready) goes on to the framework with its body as read, before anything has
-changed, so each refusal is the route's own: the same status, field, rule and value, found in
-the same order of checks.
+:class:`FastWrites` (the ASGI front of the app, ``service.app.LedgerApp``) answers the ordinary
+requests of those three routes before the framework sees them: a POST to one of their paths with an
+``application/json`` body within the size limit, sent in one piece, that ``bodies.quick_*`` reads
+as plainly valid, a token the guard knows (or none needed) and the store ready. It does the same
+work with the same items (:class:`Writes`) and sends the same JSON; a domain or learner error
+raised by that work gets the one error shape, as the route's handlers give it. Every other request
+(another path or method, another content type, a body the quick readers leave to the model, a
+missing or unknown token, a store not ready) goes on to the framework with its body as read, before
+anything has changed, so each refusal is the route's own: the same status, field, rule and value,
+found in the same order of checks.
 
 Why it exists: per call, routing through the included router, solving the route's dependencies
-and building a model per item cost more CPU than the learners themselves (benchmarks/service.py
-prints the figures).
+and building a model per item cost more CPU than the learners themselves, and the framework's
+own layers around every request (error and telemetry middleware) a tenth of a single call's
+time in the event loop (benchmarks/service.py prints the figures).
+
+An unexpected exception on the fast path gets what the framework gives one (the ``internal``
+error of ``service.errors``, 500, logged).
 """
 
 from __future__ import annotations
 
 import asyncio
 import json
+import logging
 import re
 import threading
 from collections.abc import Awaitable, Callable
@@ -37,10 +42,12 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from learners import LearnerError
 from service import bodies
-from service.errors import ServiceError, Unavailable, error_response, from_learner
+from service.errors import ServiceError, Unavailable, error_body, error_response, from_learner
 from service.registry import Registry
 from service.security import Guard, Principal, bearer_token
 from service.store import StoreFailed
+
+log = logging.getLogger("mistake_ledger.service")
 
 Write = Callable[[Principal, str, bool, list[Any]], Awaitable[Any]]
 
@@ -165,14 +172,22 @@ class Writes:
 
 
 class FastWrites:
-    """ASGI middleware: the ordinary requests of the three write routes, answered directly."""
+    """ASGI front: the ordinary requests of the three write routes, answered directly; every
+    other request goes on to ``app`` (the framework) as received."""
 
     def __init__(
-        self, app: ASGIApp, *, writes: Writes, guard: Guard, ready: Callable[[], bool]
+        self,
+        app: ASGIApp,
+        *,
+        writes: Writes,
+        guard: Guard,
+        ready: Callable[[], bool],
+        limit: int,
     ) -> None:
         self.app = app
         self.guard = guard
         self.ready = ready
+        self.limit = limit  # the most bytes of a body answered here (the body limit's)
         self.routes: dict[str, tuple[Callable[[Any], Any], Write]] = {
             "predict": (bodies.quick_predict, writes.predict),
             "feedback": (bodies.quick_feedback, writes.feedback),
@@ -186,21 +201,37 @@ class FastWrites:
         if match is None:
             await self.app(scope, receive, send)
             return
-        message = await receive()
-        if message["type"] == "http.request" and not message.get("more_body", False):
-            body = message.get("body", b"")
-            if await self._answer(scope, send, match[1], match[2], body):
-                return
-        delivered = False
+        received: list[Message] = []  # as received, to hand on if not answered here
+        size = 0
+        while size <= self.limit:
+            message = await receive()
+            received.append(message)
+            if message["type"] != "http.request":
+                break
+            size += len(message.get("body", b""))
+            if not message.get("more_body", False):
+                if size <= self.limit:
+                    body = b"".join(m.get("body", b"") for m in received)
+                    if await self._answered(scope, send, match[1], match[2], body):
+                        return
+                break
 
         async def replay() -> Message:
-            nonlocal delivered
-            if not delivered:
-                delivered = True
-                return message
-            return await receive()
+            return received.pop(0) if received else await receive()
 
         await self.app(scope, replay, send)
+
+    async def _answered(
+        self, scope: Scope, send: Send, stream: str, route: str, body: bytes
+    ) -> bool:
+        """:meth:`_answer`, with an unexpected exception answered as the framework does."""
+        try:
+            return await self._answer(scope, send, stream, route, body)
+        except Exception:
+            log.exception("unexpected error on POST %s", scope["path"])
+            failed = error_body(500, "internal", "The service failed on this request; see its log.")
+            await _send_json(send, 500, render(failed))
+            return True
 
     async def _answer(self, scope: Scope, send: Send, stream: str, route: str, body: bytes) -> bool:
         """Answer the request and return True, or return False having changed nothing."""
@@ -228,13 +259,22 @@ class FastWrites:
         response: Response
         try:
             answer = await write(principal, stream, batch, items)
-            response = Response(render(answer), media_type="application/json")
         except ServiceError as exc:
             response = error_response(exc)
         except LearnerError as exc:
             response = error_response(from_learner(exc))
+        else:
+            await _send_json(send, 200, render(answer))
+            return True
         await response(scope, _no_receive, send)
         return True
+
+
+async def _send_json(send: Send, status: int, body: bytes) -> None:
+    """Send a JSON answer with the headers a JSONResponse sends."""
+    headers = [(b"content-length", str(len(body)).encode()), (b"content-type", _JSON)]
+    await send({"type": "http.response.start", "status": status, "headers": headers})
+    await send({"type": "http.response.body", "body": body})
 
 
 async def _no_receive() -> Message:  # a response never reads the request

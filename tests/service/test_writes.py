@@ -17,9 +17,11 @@ from __future__ import annotations
 
 import json
 import re
+from functools import partial
 from pathlib import Path
 from typing import Any
 
+import httpx
 import pytest
 from fastapi.responses import JSONResponse
 from hypothesis import given, settings
@@ -243,7 +245,7 @@ def make(data_dir: Path, clock: Clock, fast: bool) -> Any:
     settings_ = Settings.from_env(env, data_dir=data_dir, admin_token=ADMIN)
     app = create_app(settings_, clock=clock, registry=CollectorRegistry())
     if not fast:  # the framework's routes alone
-        app.user_middleware = [m for m in app.user_middleware if m.cls is not FastWrites]
+        app.fast_writes = None
     return app
 
 
@@ -326,9 +328,8 @@ def test_ordinary_requests_do_not_reach_the_framework(tmp_path: Path) -> None:
     with running(app, token=ADMIN) as api:
         body = {"stream": "lane-a", "features": 8, "learners": PANEL}
         assert api.post("/v1/streams", json=body).status_code == 201
-        fast = app.middleware_stack  # built by the first request
-        while not isinstance(fast, FastWrites):
-            fast = fast.app
+        fast = app.fast_writes
+        assert isinstance(fast, FastWrites)
         inner = fast.app
 
         async def spy(scope: Any, receive: Any, send: Any) -> None:
@@ -402,3 +403,36 @@ def test_an_integer_too_large_for_a_float_is_named_not_a_crash(service: Running)
         error = response.json()["error"]
         assert error["rule"] == "finite number" and error["field"].endswith(("a", "b")), error
     assert service.get("/v1/streams/s").json()["known_features"] == 0
+
+
+def test_an_unexpected_failure_is_the_internal_error_on_both_paths(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    """A bug under a write (here: the registry raising) is a logged 500 in the one error shape,
+    from the fast path as from the framework's handler, and the stream is unchanged."""
+    answers = {}
+    for fast in (True, False):
+        app = make(tmp_path / str(fast), Clock(), fast)
+        with running(app, token=ADMIN) as api:
+            body = {"stream": "lane-a", "features": 8, "learners": PANEL}
+            assert api.post("/v1/streams", json=body).status_code == 201
+            registry = app.state.registry
+
+            def broken(*args: Any, **kwargs: Any) -> Any:
+                raise RuntimeError("a bug")
+
+            registry.predict = broken
+            client = httpx.AsyncClient(
+                transport=httpx.ASGITransport(app=app, raise_app_exceptions=False),
+                base_url="http://testserver",
+                headers={"authorization": f"Bearer {ADMIN}"},
+            )
+            caplog.clear()
+            post = partial(client.post, "/v1/streams/lane-a/predict", json={"features": ["a"]})
+            response = api.portal.call(post)
+            answers[fast] = (response.status_code, response.json())
+            assert any("a bug" in str(r.exc_info[1]) for r in caplog.records if r.exc_info)
+            del registry.predict
+            assert api.get("/v1/streams/lane-a").json()["known_features"] == 0
+    assert answers[True] == answers[False]
+    assert answers[True][0] == 500 and answers[True][1]["error"]["code"] == "internal"
