@@ -28,6 +28,7 @@ make the OpenAPI document."""
 
 from __future__ import annotations
 
+import asyncio
 import json
 import time
 from collections.abc import AsyncIterator, Callable
@@ -187,6 +188,7 @@ def create_app(
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         await run_in_threadpool(streams.open)
+        store.attach(asyncio.get_running_loop())  # syncs of the loop's writes (service.store)
         streams.start_sweeper()
         sender.start()
         try:

@@ -101,7 +101,6 @@ class Registry:
             stream.unsnapshotted += 1
             stream.unsnapshotted_items += _item_count(event)
             replayed += 1
-        self.store.start()
         for stream in self.streams.values():
             if self._snapshot_due(stream):
                 with stream.lock:

@@ -1,41 +1,50 @@
 """SQLite storage: an append-only event log, a snapshot per stream, and group commit.
 
-The file is ``<data-dir>/ledger.sqlite3`` in WAL mode; ``synchronous=FULL`` by default (an
-acknowledged write survives power loss), ``NORMAL`` on request (it survives a crash of the
-process). Tables::
+The file is ``<data-dir>/ledger.sqlite3`` in WAL mode. Durability ``full`` (the default): an
+acknowledged write survives power loss; ``normal``: it survives a crash of the process. Tables::
 
     events(seq INTEGER PRIMARY KEY, stream TEXT, body TEXT)     JSON event, in the order applied
     snapshots(stream TEXT PRIMARY KEY, seq INTEGER, body TEXT)  JSON state as of event ``seq``
     meta(key TEXT PRIMARY KEY, value TEXT)                      schema version
 
-Group commit: callers :meth:`Store.append` an event and get a future. One writer thread takes
-every job queued so far (up to a limit), writes them in one transaction, commits, and only then
-resolves their futures; a request answers after its future resolves. A commit of events only is
-one multi-row INSERT, its own transaction: SQLite then runs it, fsync included, in one call that
-releases the GIL once. Each call into SQLite hands the GIL back to the event loop's thread, and
-getting it again can take up to the interpreter's switch interval while that thread is busy, so
-a commit made of many calls (BEGIN, each row, COMMIT) took 2-3 times its fsync under load
-(benchmarks/service.py). Callers append while holding
-the stream's lock, so sequence numbers (assigned here) follow the order events were applied.
-A caller that knows more writes are about to come (the app: requests its event loop is about to
-run) may :meth:`Store.hold` the next commit until it calls :meth:`Store.release`, so they share
-one commit (one fsync) instead of each waiting for the previous one; a hold lasts at most
-``HOLD_SECONDS``, and nothing waits when nobody holds.
+Writing: callers :meth:`Store.append` an event and get a future that resolves (to the event's
+position) once the event is durable. Callers append while holding the stream's lock, so sequence
+numbers (assigned here) follow the order events were applied. The caller's thread writes the
+event at once, in one transaction (a group of events is one multi-row INSERT), except while that
+thread :meth:`holds <Store.hold>` the store: the app's event loop holds it while it runs the
+requests that are ready, then :meth:`releases <Store.release>` it, so those requests share one
+transaction. A write from another thread first writes what a hold kept back, so positions stay
+in order in the file.
+
+Durability ``full`` is SQLite's ``synchronous=FULL``, done in two steps: the transaction commits
+with ``synchronous=NORMAL`` (in WAL mode, FULL is NORMAL plus one sync of the WAL file after
+each commit, per SQLite's documentation of the pragma), and the futures resolve only after that
+sync of the WAL file. On the event loop's thread (once :meth:`attach` ed) a small helper process
+(``service/walsync.py``) makes the sync and the loop reads its answer like any socket, so the
+loop goes on running requests meanwhile and no other thread of this process needs the
+interpreter lock to finish a write; elsewhere (other threads, no loop) the writing thread syncs
+the file itself. One sync covers every transaction committed before it began, so under load
+many transactions share one. Before, a writer thread committed with FULL; beside a busy event
+loop it waited for the interpreter lock after each call into SQLite, so a commit took 4-6 times
+its fsync (benchmarks/service.py prints both).
 
 A snapshot replaces the stream's previous one and deletes the stream's events up to its position
 in the same transaction, so the log stays short. Everything is JSON; nothing is pickled.
 
-If a commit fails, the store stops: every waiting and later job fails, and the service must be
-restarted, which replays the log to the last committed event.
+If a write or a sync fails, the store stops: every waiting and later write fails, and the
+service must be restarted, which replays the log to the last durable event.
 """
 
 from __future__ import annotations
 
+import asyncio
 import json
 import logging
+import os
 import sqlite3
+import subprocess
+import sys
 import threading
-import time
 from collections import deque
 from collections.abc import Iterator
 from concurrent.futures import Future
@@ -48,18 +57,19 @@ log = logging.getLogger("mistake_ledger.store")
 
 SCHEMA_VERSION = "1"
 FILE_NAME = "ledger.sqlite3"
-HOLD_SECONDS = 0.005  # the longest a hold delays a commit
+WALSYNC = Path(__file__).with_name("walsync.py")  # the helper process that syncs the WAL file
+_TOKEN = 8  # bytes of one sync request or answer: a transaction count, big-endian
 
 
 class StoreFailed(RuntimeError):
-    """The store could not commit; it accepts nothing more until the service restarts."""
+    """The store could not write or sync; it accepts nothing more until the service restarts."""
 
 
 class _Job:
     __slots__ = ("kind", "stream", "seq", "body", "future")
 
     def __init__(self, kind: str, stream: str, seq: int, body: Any) -> None:
-        self.kind = kind  # "event", "snapshot", "drop" or "barrier"
+        self.kind = kind  # "event", "snapshot", "drop" or "barrier" (writes nothing)
         self.stream = stream
         self.seq = seq
         self.body = body
@@ -90,18 +100,26 @@ class Store:
     def __init__(self, directory: Path, *, durability: str = "full", max_batch: int = 1000) -> None:
         self.path = Path(directory) / FILE_NAME
         self.durability = durability.upper()
-        self.max_batch = max_batch
+        self.max_batch = max_batch  # the most events a hold keeps back
         self.failed: BaseException | None = None
         self.commits = 0  # transactions committed
         self.committed_jobs = 0  # jobs written by them
+        self.syncs = 0  # syncs of the WAL file made for them
         self._conn: sqlite3.Connection | None = None
-        self._queue: deque[_Job] = deque()
-        self._cond = threading.Condition()
+        self._lock = threading.RLock()  # the connection, the positions and what follows
         self._next_seq = 1
-        self._closing = False
-        self._held = 0  # holders that will release
         self._rows_per_insert = 1  # the most rows one INSERT may bind (SQLite's variable limit)
-        self._writer: threading.Thread | None = None
+        self._held = 0  # holds of the holder thread not yet released
+        self._holder: int | None = None  # the thread whose writes a hold keeps back
+        self._kept: list[_Job] = []  # kept back by a hold, not written yet
+        self._written = 0  # transactions written (the sync tokens)
+        self._durable = 0  # transactions known synced
+        self._unsynced: deque[tuple[int, list[_Job]]] = deque()  # written, sync asked, not done
+        self._loop: asyncio.AbstractEventLoop | None = None
+        self._loop_thread: int | None = None
+        self._helper: subprocess.Popen[bytes] | None = None
+        self._answers = b""  # a partial answer of the helper
+        self._closing = False
 
     # -- opening and reading ---------------------------------------------------------------
 
@@ -109,7 +127,8 @@ class Store:
         self.path.parent.mkdir(parents=True, exist_ok=True)
         conn = sqlite3.connect(self.path, isolation_level=None, check_same_thread=False)
         conn.execute("PRAGMA journal_mode=WAL")
-        conn.execute(f"PRAGMA synchronous={self.durability}")
+        # FULL is NORMAL plus a sync of the WAL file after each commit, made here (_sync).
+        conn.execute("PRAGMA synchronous=NORMAL")
         conn.execute(
             "CREATE TABLE IF NOT EXISTS events "
             "(seq INTEGER PRIMARY KEY, stream TEXT NOT NULL, body TEXT NOT NULL)"
@@ -136,6 +155,12 @@ class Store:
         self._next_seq = int(last) + 1
         self._rows_per_insert = max(1, conn.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) // 3)
         self._conn = conn
+        if self.durability == "FULL":
+            self._sync_file()  # what an earlier process wrote, before anything new is acknowledged
+
+    @property
+    def wal_path(self) -> Path:
+        return self.path.with_name(self.path.name + "-wal")
 
     def snapshots(self) -> dict[str, tuple[int, dict[str, Any]]]:
         """Every stream's latest snapshot: name -> (position, state)."""
@@ -150,88 +175,173 @@ class Store:
         for seq, stream, body in cursor:
             yield int(seq), stream, json.loads(body)
 
+    # -- the event loop's syncs ------------------------------------------------------------
+
+    def attach(self, loop: asyncio.AbstractEventLoop) -> None:
+        """Sync the writes made on ``loop``'s thread (the caller's) through the helper process,
+        whose answers ``loop`` reads; with durability ``normal`` there is nothing to sync."""
+        if self.durability != "FULL" or self._helper is not None:
+            return
+        helper = subprocess.Popen(
+            [sys.executable, "-I", "-S", str(WALSYNC), str(self.wal_path)],
+            stdin=subprocess.PIPE,
+            stdout=subprocess.PIPE,
+            bufsize=0,
+        )
+        assert helper.stdout is not None
+        os.set_blocking(helper.stdout.fileno(), False)
+        with self._lock:
+            self._helper = helper
+            self._loop = loop
+            self._loop_thread = threading.get_ident()
+        loop.add_reader(helper.stdout.fileno(), self._on_answer)
+
+    def _on_answer(self) -> None:
+        """On the loop: the helper synced; resolve every write its answer covers."""
+        helper = self._helper
+        if helper is None or helper.stdout is None:
+            return
+        error: OSError | None = None
+        try:
+            data = os.read(helper.stdout.fileno(), 4096)
+        except BlockingIOError:
+            return
+        except OSError as exc:
+            data, error = b"", exc
+        if not data:  # the helper ended: closing, or a failed sync
+            assert self._loop is not None
+            self._loop.remove_reader(helper.stdout.fileno())
+            if not self._closing:
+                self._fail(error or StoreFailed(f"The WAL sync helper ended ({helper.poll()})."))
+            return
+        data = self._answers + data
+        whole = len(data) - len(data) % _TOKEN
+        self._answers = data[whole:]
+        if whole:
+            self._synced(int.from_bytes(data[whole - _TOKEN : whole], "big"))
+
+    def _synced(self, token: int) -> None:
+        """Resolve the writes of every transaction up to ``token`` (their WAL frames are synced)."""
+        done: list[_Job] = []
+        with self._lock:
+            self._durable = max(self._durable, token)
+            while self._unsynced and self._unsynced[0][0] <= token:
+                done.extend(self._unsynced.popleft()[1])
+        for job in done:
+            if not job.future.done():
+                job.future.set_result(job.seq)
+
     # -- writing ---------------------------------------------------------------------------
 
-    def start(self) -> None:
-        self._writer = threading.Thread(target=self._write_loop, name="ledger-writer", daemon=True)
-        self._writer.start()
-
     def append(self, stream: str, event: dict[str, Any]) -> tuple[int, Future[int]]:
-        """Queue an event; the future resolves (to its position) once it is committed."""
+        """Write an event; the future resolves (to its position) once it is durable."""
         job = self._enqueue("event", stream, event)
         return job.seq, job.future
 
     def snapshot(self, stream: str, seq: int, state: str) -> Future[int]:
-        """Queue a stream's state (serialised JSON, taken under its lock) as of event ``seq``."""
+        """Write a stream's state (serialised JSON, taken under its lock) as of event ``seq``."""
         return self._enqueue("snapshot", stream, (seq, state)).future
 
     def drop(self, stream: str) -> Future[int]:
-        """Queue the removal of everything stored for a stream."""
+        """Remove everything stored for a stream."""
         return self._enqueue("drop", stream, None).future
 
     def barrier(self) -> Future[int]:
-        """A future that resolves once everything queued before it is committed."""
+        """A future that resolves once everything written before it is durable."""
         return self._enqueue("barrier", "", None).future
 
     def hold(self) -> None:
-        """Keep the next commit waiting (at most HOLD_SECONDS) until :meth:`release`."""
-        with self._cond:
+        """Keep this thread's writes back until :meth:`release` (at most ``max_batch`` of
+        them): they then share one transaction and one sync."""
+        with self._lock:
+            self._holder = threading.get_ident()
             self._held += 1
 
     def release(self) -> None:
-        with self._cond:
+        with self._lock:
             self._held -= 1
             if not self._held:
-                self._cond.notify()
+                self._holder = None
+                self._write([])
 
     def _enqueue(self, kind: str, stream: str, body: Any) -> _Job:
-        with self._cond:
+        with self._lock:
             if self.failed is not None:
                 raise StoreFailed(f"The store failed earlier: {self.failed}")
             if self._closing:
                 raise StoreFailed("The store is closing.")
             job = _Job(kind, stream, self._next_seq, body)
             self._next_seq += 1
-            self._queue.append(job)
-            if not self._held or len(self._queue) in (1, self.max_batch):
-                self._cond.notify()  # held: only to start the writer's bounded wait
+            if self._held and self._holder == threading.get_ident():
+                self._kept.append(job)
+                if len(self._kept) >= self.max_batch:
+                    self._write([])
+            else:
+                self._write([job])
         return job
 
-    def _write_loop(self) -> None:
-        while True:
-            with self._cond:
-                while not self._queue and not self._closing:
-                    self._cond.wait()
-                if self._held:
-                    deadline = time.monotonic() + HOLD_SECONDS
-                    while self._held and len(self._queue) < self.max_batch and not self._closing:
-                        left = deadline - time.monotonic()
-                        if left <= 0:
-                            break
-                        self._cond.wait(left)
-                if not self._queue:
-                    return
-                batch = [
-                    self._queue.popleft() for _ in range(min(self.max_batch, len(self._queue)))
-                ]
-            try:
+    def _write(self, jobs: list[_Job]) -> None:
+        """Write what a hold kept back and ``jobs`` in one transaction, then sync it (the lock is
+        held). Resolves the futures, or leaves them to the helper's answer."""
+        batch = self._kept + jobs if self._kept else jobs
+        self._kept = []
+        if not batch or self.failed is not None:
+            return
+        try:
+            if any(job.kind != "barrier" for job in batch):
                 self._commit(batch)
-            except Exception as exc:  # the disk, not the caller: stop and report
-                log.exception("commit failed; the store stops accepting writes")
-                with self._cond:
-                    self.failed = exc
-                    batch.extend(self._queue)
-                    self._queue.clear()
-                for job in batch:
-                    if not job.future.done():
-                        job.future.set_exception(StoreFailed(f"The commit failed: {exc}"))
+                self._written += 1
+            if self.durability != "FULL":
+                done = batch
+            elif self._written == self._durable:
+                done = batch  # nothing written since the last sync (barriers alone)
+            elif threading.get_ident() == self._loop_thread and self._helper is not None:
+                self._ask_sync(batch)
                 return
-            for job in batch:
-                job.future.set_result(job.seq)
+            else:
+                self._sync_file()
+                self._durable = self._written
+                done = [job for _, jobs_ in self._unsynced for job in jobs_] + batch
+                self._unsynced.clear()
+        except Exception as exc:  # the disk, not the caller: stop and report
+            log.exception("a write failed; the store stops accepting writes")
+            self._fail(exc, batch)
+            return
+        for job in done:
+            job.future.set_result(job.seq)
+
+    def _ask_sync(self, batch: list[_Job]) -> None:
+        token = self._written
+        if self._unsynced and self._unsynced[-1][0] == token:
+            self._unsynced[-1][1].extend(batch)  # barriers after the last sync asked
+            return
+        self._unsynced.append((token, batch))
+        assert self._helper is not None and self._helper.stdin is not None
+        self._helper.stdin.write(token.to_bytes(_TOKEN, "big"))
+
+    def _sync_file(self) -> None:
+        """Sync the WAL file from this thread: every transaction committed so far is durable."""
+        try:
+            fd = os.open(self.wal_path, os.O_RDONLY)
+        except FileNotFoundError:
+            return  # no WAL yet: nothing was written since the database was checkpointed
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        self.syncs += 1
+
+    def _fail(self, exc: BaseException, batch: list[_Job] | None = None) -> None:
+        with self._lock:
+            self.failed = exc
+            waiting = (batch or []) + self._kept + [j for _, jobs in self._unsynced for j in jobs]
+            self._kept = []
+            self._unsynced.clear()
+        for job in waiting:
+            if not job.future.done():
+                job.future.set_exception(StoreFailed(f"The write failed: {exc}"))
 
     def _commit(self, batch: list[_Job]) -> None:
-        if all(job.kind == "barrier" for job in batch):
-            return
         conn = self._conn
         assert conn is not None
         if len(batch) <= self._rows_per_insert and all(job.kind == "event" for job in batch):
@@ -278,13 +388,42 @@ class Store:
     # -- closing ---------------------------------------------------------------------------
 
     def close(self) -> None:
-        """Write what is queued, stop the writer and close the file."""
-        with self._cond:
+        """Write what a hold kept back, sync, stop the helper and close the file."""
+        with self._lock:
             self._closing = True
-            self._cond.notify()
-        if self._writer is not None:
-            self._writer.join()
-            self._writer = None
+            if self.failed is None:
+                self._held, self._holder = 0, None
+                self._write([])
+                try:
+                    if self._written > self._durable:
+                        self._sync_file()
+                except OSError as exc:
+                    self._fail(exc)
+                else:
+                    self._synced(self._written)
+            helper, self._helper = self._helper, None
+        if helper is not None:
+            assert helper.stdin is not None and helper.stdout is not None
+            loop, fd = self._loop, helper.stdout.fileno()
+            if loop is not None and not loop.is_closed():
+                if threading.get_ident() == self._loop_thread:
+                    loop.remove_reader(fd)
+                else:  # the loop's reader, removed on the loop before the pipe closes
+                    done = threading.Event()
+
+                    def remove() -> None:
+                        loop.remove_reader(fd)
+                        done.set()
+
+                    loop.call_soon_threadsafe(remove)
+                    done.wait(5)
+            helper.stdin.close()
+            try:
+                helper.wait(5)
+            except subprocess.TimeoutExpired:
+                helper.kill()
+                helper.wait()
+            helper.stdout.close()
         if self._conn is not None:
             self._conn.close()
             self._conn = None

@@ -81,9 +81,9 @@ async def committed(future: Future[int]) -> None:
 class Writes:
     """Predict, feedback and examples on a stream, answered once committed.
 
-    Two things keep the commits cheap under concurrent requests: writes that the event loop
-    runs back to back share one commit (:meth:`_share_commit`, ``Store.hold``), and one commit
-    wakes the loop once for all the requests it answers (:meth:`_committed`).
+    Writes that the event loop runs back to back share one transaction and one sync
+    (:meth:`_share_commit`, ``Store.hold``); the store tells the loop when they are durable
+    (:meth:`_committed`).
     """
 
     def __init__(self, streams: Registry, guard: Guard) -> None:
@@ -95,13 +95,23 @@ class Writes:
         self._rung = False
 
     async def _committed(self, future: Future[int]) -> None:
-        """Wait until an event is committed (as ``committed``, with fewer wake-ups): the
-        writer thread wakes the event loop once for all the requests one commit answers,
-        not once per request."""
+        """Wait until an event is durable (as ``committed``, with fewer wake-ups). Mostly the
+        store resolves the future on the loop's thread (``Store.attach``): the waiter is then
+        told at once. From another thread (a write of the sweeper's that synced the file), one
+        wake-up of the loop tells all the requests that thread resolved, not one per request."""
         if not future.done():
             loop = asyncio.get_running_loop()
             waiter = loop.create_future()
-            future.add_done_callback(lambda _: self._ring(loop, waiter))
+            here = threading.get_ident()
+
+            def done(_: Future[int]) -> None:
+                if threading.get_ident() == here:
+                    if not waiter.done():
+                        waiter.set_result(None)
+                else:
+                    self._ring(loop, waiter)
+
+            future.add_done_callback(done)
             await waiter
         exc = future.exception()
         if isinstance(exc, StoreFailed):
@@ -110,7 +120,7 @@ class Writes:
             raise exc
 
     def _ring(self, loop: asyncio.AbstractEventLoop, waiter: asyncio.Future[None]) -> None:
-        # In the writer thread, once per committed request.
+        # In another thread, once per request it resolved.
         with self._lock:
             self._finished.append(waiter)
             if self._rung:

@@ -6,6 +6,8 @@ import json
 import random
 import shutil
 import sqlite3
+import subprocess
+import sys
 import threading
 import time
 from pathlib import Path
@@ -13,7 +15,7 @@ from typing import Any
 
 import pytest
 
-from service.store import FILE_NAME
+from service.store import FILE_NAME, WALSYNC, Store
 from tests.service.conftest import MakeApp
 from tests.service.harness import Clock, Running, running
 
@@ -317,15 +319,60 @@ def test_batches_are_snapshotted_by_their_items(make_app: MakeApp, data_dir: Pat
         assert counts == [2, 3, 0]
 
 
-@pytest.mark.parametrize(("setting", "pragma"), [("full", 2), ("normal", 1)])
-def test_the_durability_setting_sets_sqlite_synchronous(
-    make_app: MakeApp, setting: str, pragma: int
+@pytest.mark.parametrize("setting", ["full", "normal"])
+def test_the_durability_setting_decides_whether_writes_wait_for_a_wal_sync(
+    make_app: MakeApp, setting: str
 ) -> None:
-    # SQLite's PRAGMA synchronous reads 2 for FULL and 1 for NORMAL (sqlite.org/pragma.html).
+    """SQLite's synchronous=FULL in WAL mode is NORMAL plus a sync of the WAL file after each
+    commit (sqlite.org/pragma.html#pragma_synchronous). The store commits with NORMAL (the
+    pragma reads 1) and, for ``full``, answers a write only after that sync: through the helper
+    process on the event loop's thread, by the writing thread elsewhere."""
     with running(make_app(durability=setting)) as service:
-        conn = service.registry.store._conn
-        assert conn.execute("PRAGMA synchronous").fetchone()[0] == pragma
+        store = service.registry.store
+        conn = store._conn
+        assert conn.execute("PRAGMA synchronous").fetchone()[0] == 1
         assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+        body = {"stream": "s", "features": 4, "learners": [{"name": "p", "kind": "perceptron"}]}
+        assert service.post("/v1/streams", json=body).status_code == 201
+        for i in range(5):
+            answer = service.post("/v1/streams/s/predict", json={"id": f"p{i}", "features": ["a"]})
+            assert answer.status_code == 200
+        written, before = store._written, store.syncs
+        if setting == "full":
+            assert store._helper is not None and store._helper.poll() is None
+            assert store._durable == written >= 6  # every acknowledged write was synced
+            store.barrier().result(5)  # from this thread (not the loop's): synced here if due
+            assert store.syncs == before
+        else:
+            assert store._helper is None and store.syncs == 0
+
+
+def test_a_write_from_another_thread_syncs_itself_and_what_waits_before_it(
+    tmp_path: Path,
+) -> None:
+    store = Store(tmp_path)
+    store.open()
+    try:
+        before = store.syncs
+        futures = [store.append("s", {"type": "noop", "n": i})[1] for i in range(3)]
+        assert all(f.done() and f.result() == i + 1 for i, f in enumerate(futures))
+        assert store.syncs == before + 3  # no loop: each write synced by its own thread
+        assert store.barrier().result() == 4 and store.syncs == before + 3  # nothing new
+    finally:
+        store.close()
+
+
+def test_the_sync_helper_answers_the_largest_count_it_read(tmp_path: Path) -> None:
+    wal = tmp_path / "x-wal"
+    wal.write_bytes(b"frames")
+    helper = subprocess.Popen(
+        [sys.executable, "-I", "-S", str(WALSYNC), str(wal)],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+    )
+    out, _ = helper.communicate((3).to_bytes(8, "big") + (7).to_bytes(8, "big"), timeout=10)
+    assert helper.returncode == 0
+    assert len(out) % 8 == 0 and int.from_bytes(out[-8:], "big") == 7
 
 
 def test_a_snapshot_text_reads_back_as_the_state_and_never_holds_nan() -> None:
