@@ -15,6 +15,7 @@ from typing import Any
 
 import pytest
 
+from service import store as store_module
 from service.store import FILE_NAME, WALSYNC, Store
 from tests.service.conftest import MakeApp
 from tests.service.harness import Clock, Running, running
@@ -406,3 +407,26 @@ def test_a_snapshot_text_reads_back_as_the_state_and_never_holds_nan() -> None:
         state["seats"][0]["learner"]["learned"]["b"] = bad
         with pytest.raises(ValueError):
             state_text(state)
+
+
+def test_checkpoints_run_on_their_own_thread_once_enough_was_written(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """SQLite's automatic checkpoint is off on the writing connection (it would run inside
+    whichever write crosses its threshold, perhaps the event loop's); the store's checkpoint
+    thread copies the WAL into the database file instead, after CHECKPOINT_BYTES of text."""
+    monkeypatch.setattr(store_module, "CHECKPOINT_BYTES", 50_000)
+    store = Store(tmp_path)
+    store.open()
+    try:
+        assert store._conn.execute("PRAGMA wal_autocheckpoint").fetchone()[0] == 0
+        database = tmp_path / FILE_NAME
+        before = database.stat().st_size
+        for i in range(40):  # about 2,000 bytes each: past the threshold once
+            store.append("s", {"type": "noop", "n": i, "pad": "x" * 2000})
+        deadline = time.monotonic() + 10
+        while database.stat().st_size <= before and time.monotonic() < deadline:
+            time.sleep(0.02)
+        assert database.stat().st_size > before  # pages copied out of the WAL
+    finally:
+        store.close()
