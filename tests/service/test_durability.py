@@ -414,8 +414,9 @@ def test_checkpoints_run_on_their_own_thread_once_enough_was_written(
 ) -> None:
     """SQLite's automatic checkpoint is off on the writing connection (it would run inside
     whichever write crosses its threshold, perhaps the event loop's); the store's checkpoint
-    thread copies the WAL into the database file instead, after CHECKPOINT_BYTES of text."""
-    monkeypatch.setattr(store_module, "CHECKPOINT_BYTES", 50_000)
+    thread copies the WAL into the database file instead, after about CHECKPOINT_PAGES pages, and
+    the writes after it copy the rest, so that the WAL file starts over rather than grows."""
+    monkeypatch.setattr(store_module, "CHECKPOINT_PAGES", 30)
     store = Store(tmp_path)
     store.open()
     try:
@@ -428,5 +429,9 @@ def test_checkpoints_run_on_their_own_thread_once_enough_was_written(
         while database.stat().st_size <= before and time.monotonic() < deadline:
             time.sleep(0.02)
         assert database.stat().st_size > before  # pages copied out of the WAL
+        wal = store.wal_path.stat().st_size
+        for i in range(400):  # many thresholds' worth, written while checkpoints run
+            store.append("s", {"type": "noop", "n": i, "pad": "x" * 2000})
+        assert store.wal_path.stat().st_size < wal + 20 * 30 * 4096
     finally:
         store.close()
