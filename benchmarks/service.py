@@ -398,8 +398,9 @@ def commit_seconds(directory: Path, commits: int = 200) -> tuple[float, float]:
 
 def busy_commit_seconds(directory: Path, seconds: float = 2.0) -> float:
     """The median time of one such commit (25 rows in one INSERT, as the store writes a group)
-    made by a second thread while this thread runs Python, as the service's event loop does
-    under load: the commit thread waits for the interpreter lock after its calls into SQLite."""
+    made by a second thread while this thread runs Python, as a busy event loop does: that
+    thread waits for the interpreter lock after its calls into SQLite. (The store therefore
+    writes on the loop's own thread and syncs through a helper process.)"""
     path = directory / "busy-probe.sqlite3"
     conn = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
     conn.execute("PRAGMA journal_mode=WAL")
@@ -871,10 +872,10 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
         "ms (200 commits). A durable call answers after "
         "its commit; with k calls in flight at most k share one, so with few in flight the "
         "service waits on the disk, not on its CPU (compare the server CPU per call). "
-        "The same commit (25 rows) made by a second thread while this one runs Python, as the "
-        "service's commit thread does beside its busy event loop: median "
-        f"{figures.busy_commit_seconds * 1e3:.2f} ms (the commit thread waits for the "
-        "interpreter lock after its calls into SQLite)."
+        "The same commit (25 rows) made by a second thread while this one runs Python: median "
+        f"{figures.busy_commit_seconds * 1e3:.2f} ms (that thread waits for the interpreter "
+        "lock after its calls into SQLite; why the service writes on its event loop's thread "
+        "and leaves the sync to a helper process, service/store.py)."
     )
     if figures.collections:
         counts = ", ".join(
