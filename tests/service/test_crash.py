@@ -963,3 +963,34 @@ def test_kill_9_loses_no_acknowledged_write_and_applies_none_twice(
         server.stop()
     finally:
         server.cleanup()
+
+
+def sync_helpers(data_dir: Path) -> list[int]:
+    """The processes syncing this data directory's WAL file (``service/walsync.py``)."""
+    wal = str(data_dir / FILE_NAME).encode() + b"-wal"
+    found = []
+    for proc in Path("/proc").iterdir():
+        try:
+            if proc.name.isdigit() and wal in (proc / "cmdline").read_bytes().split(b"\0"):
+                found.append(int(proc.name))
+        except OSError:  # ended meanwhile
+            continue
+    return found
+
+
+def test_the_sync_helper_ends_with_its_server_killed_or_stopped(tmp_path: Path) -> None:
+    """With durability full the server runs one helper process that syncs the WAL file; it
+    reads its requests from the server, so it ends when the server ends, even by kill -9
+    (no process left behind to hold the file)."""
+    server = Server(tmp_path / "data", "full", 5000, tmp_path)
+    try:
+        for end in (server.kill, server.stop):
+            server.start()
+            assert len(sync_helpers(server.data_dir)) == 1
+            end()
+            deadline = time.monotonic() + 10
+            while sync_helpers(server.data_dir) and time.monotonic() < deadline:
+                time.sleep(0.05)
+            assert sync_helpers(server.data_dir) == []
+    finally:
+        server.cleanup()
