@@ -25,7 +25,7 @@ loop goes on running requests meanwhile and no other thread of this process need
 interpreter lock to finish a write; elsewhere (other threads, no loop) the writing thread syncs
 the file itself. One sync covers every transaction committed before it began, so under load
 many transactions share one. Before, a writer thread committed with FULL; beside a busy event
-loop it waited for the interpreter lock after each call into SQLite, so a commit took 4-6 times
+loop it waited for the interpreter lock after each call into SQLite, so a commit took 3-6 times
 its fsync (benchmarks/service.py prints both).
 
 Checkpoints (copying the WAL into the database file) run on a thread of their own with its own
