@@ -435,3 +435,23 @@ def test_checkpoints_run_on_their_own_thread_once_enough_was_written(
         assert store.wal_path.stat().st_size < wal + 20 * 30 * 4096
     finally:
         store.close()
+
+
+def test_a_sync_helper_that_dies_stops_the_store_and_nothing_is_acknowledged_after(
+    make_app: MakeApp,
+) -> None:
+    """If the WAL sync helper ends (killed, or a sync failed), no write can be made durable:
+    the store stops, writes are refused with 503 and readiness fails, as for a failed commit."""
+    with running(make_app(durability="full")) as service:
+        body = {"stream": "s", "features": 4, "learners": [{"name": "p", "kind": "perceptron"}]}
+        assert service.post("/v1/streams", json=body).status_code == 201
+        store = service.registry.store
+        store._helper.kill()
+        deadline = time.monotonic() + 10
+        while store.failed is None and time.monotonic() < deadline:
+            time.sleep(0.02)
+        assert store.failed is not None
+        answer = service.post("/v1/streams/s/predict", json={"id": "p1", "features": ["a"]})
+        assert answer.status_code == 503, answer.text
+        assert answer.json()["error"]["field"] == "store"
+        assert service.get("/readyz").status_code == 503
