@@ -7,14 +7,14 @@ call it with the body their request model validated.
 
 :class:`FastWrites` (the ASGI front of the app, ``service.app.LedgerApp``) answers the ordinary
 requests of those three routes before the framework sees them: a POST to one of their paths with an
-``application/json`` body within the size limit, sent in one piece, that ``bodies.quick_*`` reads
-as plainly valid, a token the guard knows (or none needed) and the store ready. It does the same
-work with the same items (:class:`Writes`) and sends the same JSON; a domain or learner error
-raised by that work gets the one error shape, as the route's handlers give it. Every other request
-(another path or method, another content type, a body the quick readers leave to the model, a
-missing or unknown token, a store not ready) goes on to the framework with its body as read, before
-anything has changed, so each refusal is the route's own: the same status, field, rule and value,
-found in the same order of checks.
+``application/json`` body within the size limit that ``bodies.quick_*`` reads as plainly valid, a
+token the guard knows (or none needed) and the store ready. It does the same work with the same
+items (:class:`Writes`) and sends the same JSON; a domain or learner error raised by that work gets
+the one error shape, as the route's handlers give it. Every other request (another path or method,
+another content type, a body the quick readers leave to the model, a missing or unknown token, a
+store not ready) goes on to the framework with its body as read, before anything has changed, so
+each refusal is the route's own: the same status, field, rule and value, found in the same order of
+checks.
 
 Why it exists: per call, routing through the included router, solving the route's dependencies
 and building a model per item cost more CPU than the learners themselves, and the framework's
