@@ -257,6 +257,11 @@ def _rule_of(kind: str, ctx: dict[str, Any], msg: str) -> str:
     return msg
 
 
+def internal_error_body() -> dict[str, Any]:
+    """The body of the 500 answered for an unexpected exception (logged by the caller)."""
+    return error_body(500, "internal", "The service failed on this request; see its log.")
+
+
 def install(app: FastAPI) -> None:
     """Register the handlers that turn every error into the one shape."""
 
@@ -295,6 +300,6 @@ def install(app: FastAPI) -> None:
     async def _unexpected(request: Request, exc: Exception) -> JSONResponse:
         log.exception("unexpected error on %s %s", request.method, request.url.path)
         return JSONResponse(
-            error_body(500, "internal", "The service failed on this request; see its log."),
+            internal_error_body(),
             status_code=500,
         )

@@ -30,9 +30,10 @@ its fsync (benchmarks/service.py prints both).
 
 Checkpoints (copying the WAL into the database file) run on a thread of their own with its own
 connection, once about ``CHECKPOINT_PAGES`` pages were written, instead of inside whichever write
-crosses SQLite's threshold; the next write copies the few pages written meanwhile, so that the WAL
-file starts over rather than grows. A big snapshot is still written by the thread that takes it
-(the event loop's, mostly): 20-35 ms for 4.7 MB here, during which the loop waits.
+crosses SQLite's threshold; the next write copies the few pages written meanwhile (with that
+checkpoint's syncs, on the writing thread), so that the WAL file starts over rather than grows. A
+big snapshot is still written by the thread that takes it (the event loop's, mostly): 20-35 ms for
+4.7 MB here, during which the loop waits.
 
 A snapshot replaces the stream's previous one and deletes the stream's events up to its position
 in the same transaction, so the log stays short. Everything is JSON; nothing is pickled.
@@ -59,12 +60,13 @@ from typing import Any
 
 import orjson
 
+from service import walsync
+
 log = logging.getLogger("mistake_ledger.store")
 
 SCHEMA_VERSION = "1"
 FILE_NAME = "ledger.sqlite3"
 WALSYNC = Path(__file__).with_name("walsync.py")  # the helper process that syncs the WAL file
-_TOKEN = 8  # bytes of one sync request or answer: a transaction count, big-endian
 # Pages written to the WAL between two checkpoints (SQLite's own default), counted roughly: a
 # transaction writes at least the pages its rows change (a leaf of the table and of its index,
 # often more) plus one page per 4 KiB of text.
@@ -115,7 +117,7 @@ class Store:
         self.failed: BaseException | None = None
         self.commits = 0  # transactions committed
         self.committed_jobs = 0  # jobs written by them
-        self.syncs = 0  # syncs of the WAL file made for them
+        self.syncs = 0  # syncs of the WAL file made by this process's threads
         self._conn: sqlite3.Connection | None = None
         self._lock = threading.RLock()  # the connection, the positions and what follows
         self._next_seq = 1
@@ -142,7 +144,7 @@ class Store:
         self.path.parent.mkdir(parents=True, exist_ok=True)
         conn = sqlite3.connect(self.path, isolation_level=None, check_same_thread=False)
         conn.execute("PRAGMA journal_mode=WAL")
-        # FULL is NORMAL plus a sync of the WAL file after each commit, made here (_sync).
+        # FULL is NORMAL plus a sync of the WAL file after each commit (_write makes it).
         conn.execute("PRAGMA synchronous=NORMAL")
         conn.execute(
             "CREATE TABLE IF NOT EXISTS events "
@@ -238,10 +240,10 @@ class Store:
                 self._fail(error or StoreFailed(f"The WAL sync helper ended ({helper.poll()})."))
             return
         data = self._answers + data
-        whole = len(data) - len(data) % _TOKEN
+        whole = len(data) - len(data) % walsync.TOKEN
         self._answers = data[whole:]
         if whole:
-            self._synced(int.from_bytes(data[whole - _TOKEN : whole], "big"))
+            self._synced(int.from_bytes(data[whole - walsync.TOKEN : whole], "big"))
 
     def _synced(self, token: int) -> None:
         """Resolve the writes of every transaction up to ``token`` (their WAL frames are synced)."""
@@ -340,19 +342,12 @@ class Store:
             return
         self._unsynced.append((token, batch))
         assert self._helper is not None and self._helper.stdin is not None
-        self._helper.stdin.write(token.to_bytes(_TOKEN, "big"))
+        self._helper.stdin.write(token.to_bytes(walsync.TOKEN, "big"))
 
     def _sync_file(self) -> None:
         """Sync the WAL file from this thread: every transaction committed so far is durable."""
-        try:
-            fd = os.open(self.wal_path, os.O_RDONLY)
-        except FileNotFoundError:
-            return  # no WAL yet: nothing was written since the database was checkpointed
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        self.syncs += 1
+        if walsync.sync_file(str(self.wal_path)):
+            self.syncs += 1
 
     def _fail(self, exc: BaseException, batch: list[_Job] | None = None) -> None:
         with self._lock:

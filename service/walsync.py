@@ -11,7 +11,21 @@ sees its output close and stops accepting writes.
 import os
 import sys
 
-TOKEN = 8
+TOKEN = 8  # bytes of one request or answer: a count of transactions, big-endian
+
+
+def sync_file(path: str) -> bool:
+    """Sync the file at ``path``; False when there is none (nothing was written since the
+    database was checkpointed). The store's own threads sync through this function too."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except FileNotFoundError:
+        return False
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+    return True
 
 
 def main() -> int:
@@ -24,18 +38,9 @@ def main() -> int:
         data = pending + data
         whole = len(data) - len(data) % TOKEN
         pending = data[whole:]
-        if not whole:
-            continue
-        try:
-            fd = os.open(path, os.O_RDONLY)
-        except FileNotFoundError:  # nothing written since the database was checkpointed
-            pass
-        else:
-            try:
-                os.fsync(fd)
-            finally:
-                os.close(fd)
-        os.write(1, data[whole - TOKEN : whole])
+        if whole:
+            sync_file(path)
+            os.write(1, data[whole - TOKEN : whole])
 
 
 if __name__ == "__main__":

@@ -42,7 +42,13 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from learners import LearnerError
 from service import bodies
-from service.errors import ServiceError, Unavailable, error_body, error_response, from_learner
+from service.errors import (
+    ServiceError,
+    Unavailable,
+    error_response,
+    from_learner,
+    internal_error_body,
+)
 from service.registry import Registry
 from service.security import Guard, Principal, bearer_token
 from service.store import StoreFailed
@@ -239,8 +245,7 @@ class FastWrites:
             return await self._answer(scope, send, stream, route, body)
         except Exception:
             log.exception("unexpected error on POST %s", scope["path"])
-            failed = error_body(500, "internal", "The service failed on this request; see its log.")
-            await _send_json(send, 500, render(failed))
+            await _send_json(send, 500, render(internal_error_body()))
             return True
 
     async def _answer(self, scope: Scope, send: Send, stream: str, route: str, body: bytes) -> bool:
