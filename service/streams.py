@@ -21,7 +21,9 @@ from __future__ import annotations
 import hashlib
 import json
 import re
+import struct
 import threading
+from array import array
 from bisect import bisect_left
 from collections import deque
 from collections.abc import Mapping, Sequence
@@ -37,6 +39,7 @@ from service.errors import Conflict, InvalidInput
 
 Features = Mapping[str, float] | Sequence[str]
 
+STATE_VERSION = 2  # of Stream.to_state; version 1 held text prints
 VIEW_CACHE = 64  # distinct vote / outcome views kept per stream
 # Predict and examples batches of at least BATCH_AT_ONCE items, and feedback batches of at least
 # FEEDBACK_AT_ONCE, are voted and learned by each learner at once (screens over the whole batch,
@@ -64,12 +67,59 @@ DELAY_BUCKETS = (
 )
 
 
-def fingerprint(features: Features) -> str:
-    """A digest of an item that does not depend on the form: {"a": 1} and ["a"] are equal.
+# -- item prints ----------------------------------------------------------------------------
+#
+# A stream remembers a print of each item's features, to tell a repeat (the same features under
+# the same id) from a conflict. A print is a 64-bit integer: the sum, modulo 2**64, of one share
+# per non-zero entry, so neither the order of the names nor the form of the item ({"a": 1} or
+# ["a"]) changes it. A flag's share (value 1) is its name's digest (blake2b, 8 bytes); another
+# value's share mixes the digest with the value's bits (the splitmix64 finaliser). A stream keeps
+# its names' digests in index order, so the prints of a batch are a few array operations over its
+# encoded indices. Two different items under one id get the same print by chance about once in
+# 2**64 (for shares that behave as random 64-bit numbers).
+#
+# Stream states of version 1 hold text prints (``fingerprint``); an id remembered with one is
+# compared in that form.
 
-    The digest is of ``json.dumps(sorted((name, float(value)) for the non-zero values))``; stored
-    states keep it, so it must not change. The common forms (a list of string names, a dict of
-    string names to finite numbers) build that same text without the general encoder.
+PRINT_MASK = (1 << 64) - 1
+_MIX1 = 0xBF58476D1CE4E5B9
+_MIX2 = 0x94D049BB133111EB
+_DOUBLE = struct.Struct("<d")
+_WORD = struct.Struct("<Q")
+
+
+def name_digest(name: str) -> int:
+    """A feature name's 64-bit digest, the same in every process."""
+    data = name.encode("utf-8", "surrogatepass")
+    return int.from_bytes(hashlib.blake2b(data, digest_size=8).digest(), "little")
+
+
+def value_share(digest: int, value: float) -> int:
+    """An entry's share of its item's print: the name's digest when the value is 1, else the
+    digest and the value's bits mixed."""
+    if value == 1.0:
+        return digest
+    x = digest ^ _WORD.unpack(_DOUBLE.pack(value))[0]
+    x = ((x ^ (x >> 30)) * _MIX1) & PRINT_MASK
+    x = ((x ^ (x >> 27)) * _MIX2) & PRINT_MASK
+    return x ^ (x >> 31)
+
+
+def _value_shares(digests: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """:func:`value_share` over arrays (uint64 digests, float64 values; products wrap)."""
+    x: np.ndarray = digests ^ values.view(np.uint64)
+    x = (x ^ (x >> np.uint64(30))) * np.uint64(_MIX1)
+    x = (x ^ (x >> np.uint64(27))) * np.uint64(_MIX2)
+    x = x ^ (x >> np.uint64(31))
+    return np.where(values == 1.0, digests, x)
+
+
+def fingerprint(features: Features) -> str:
+    """The text print of stream states of version 1, which does not depend on the form either.
+
+    The digest is of ``json.dumps(sorted((name, float(value)) for the non-zero values))``; states
+    of version 1 keep it, so it must not change. The common forms (a list of string names, a dict
+    of string names to finite numbers) build that same text without the general encoder.
     """
     try:
         if type(features) is list:
@@ -131,7 +181,7 @@ class Pending:
         enc: Encoded,
         votes: tuple[int, ...],
         epochs: tuple[int, ...],
-        fp: str,
+        fp: int | str,  # a print; text in states of version 1
         seq: int = -1,
     ) -> None:
         self.item_id = item_id
@@ -153,7 +203,7 @@ class Resolved:
         self,
         kind: str,  # "labelled", "expired" or "example"
         at: float,
-        fp: str,
+        fp: int | str,  # a print; text in states of version 1
         label: int | None,
         votes: tuple[int, ...] | None,
         wrong: int,
@@ -231,6 +281,7 @@ class Stream:
         self.created = t
         self.last_t = t
         self.space = FeatureSpace(config["features"])
+        self._digests = array("Q")  # the digests of the space's first names, in index order
         self.label_wait = float(config["label_wait_seconds"])
         self.policy: str = config["on_exceed"]
         self.max_remembered = max_remembered
@@ -355,29 +406,32 @@ class Stream:
         ``FeatureSpace.encode``).
         """
         t = self.advance(t)
-        prints = [fingerprint(features) for _, features in items]
         first: dict[str, int] = {}
         fresh: list[int] = []
-        for index, (item_id, _) in enumerate(items):
-            fp = prints[index]
+        for index, (item_id, features) in enumerate(items):
             if item_id in first:
-                if prints[first[item_id]] != fp:
+                if self._print_of(items[first[item_id]][1]) != self._print_of(features):
                     raise ItemError(index, self._reused(item_id, "earlier in this batch"))
                 continue
             first[item_id] = index
             known = self.pending.get(item_id) or self.resolved.get(item_id)
             if known is None:
                 fresh.append(index)
-            elif known.fp != fp or (isinstance(known, Resolved) and known.votes is None):
+            elif not self._same_item(known.fp, features) or (
+                isinstance(known, Resolved) and known.votes is None
+            ):
                 raise ItemError(index, self._reused(item_id, "before"))
-        encoded, panel_votes = self._encode([items[i][1] for i in fresh], fresh, checked=checked)
+        encoded, panel_votes, rows = self._encode(
+            [items[i][1] for i in fresh], fresh, checked=checked
+        )
+        prints = self._prints(encoded, rows)
         epochs, seq = self.epochs, self.counts["predictions"]
         fresh_votes: dict[int, tuple[int, ...]] = {}
-        for index, enc, votes in zip(fresh, encoded, panel_votes, strict=True):
+        for index, enc, votes, fp in zip(fresh, encoded, panel_votes, prints, strict=True):
             # The bare indices only: the views the learners built are rebuilt at label time,
             # so a waiting prediction costs little memory.
             bare = Encoded(enc.keys, enc.vals)
-            self._wait(Pending(items[index][0], t, bare, votes, epochs, prints[index], seq))
+            self._wait(Pending(items[index][0], t, bare, votes, epochs, fp, seq))
             fresh_votes[index] = votes
         if fresh:
             for seat in self.seats:
@@ -468,14 +522,12 @@ class Stream:
         """Labelled items never predicted: every learner learns; no served mistake is counted.
         ``checked`` as for :meth:`apply_predict`."""
         t = self.advance(t)
-        prints = [fingerprint(features) for _, features, _ in items]
         first: dict[str, int] = {}
         fresh: list[int] = []
-        for index, (item_id, _, y) in enumerate(items):
-            fp = prints[index]
+        for index, (item_id, features, y) in enumerate(items):
             if item_id in first:
-                earlier = first[item_id]
-                if prints[earlier] != fp or items[earlier][2] != y:
+                _, earlier, label = items[first[item_id]]
+                if label != y or self._print_of(earlier) != self._print_of(features):
                     raise ItemError(index, self._reused(item_id, "earlier in this batch"))
                 continue
             first[item_id] = index
@@ -493,17 +545,23 @@ class Stream:
             known = self.resolved.get(item_id)
             if known is None:
                 fresh.append(index)
-            elif known.kind != "example" or known.fp != fp or known.label != y:
+            elif (
+                known.kind != "example"
+                or known.label != y
+                or not self._same_item(known.fp, features)
+            ):
                 raise ItemError(index, self._reused(item_id, "before"))
-        features = [items[i][1] for i in fresh]
-        encoded, _ = self._encode(features, fresh, vote=False, checked=checked)
+        encoded, _, rows = self._encode(
+            [items[i][1] for i in fresh], fresh, vote=False, checked=checked
+        )
+        prints = self._prints(encoded, rows)
         ids = [items[i][0] for i in fresh]
-        bits = self._learn_many(t, ids, encoded, [items[i][2] for i in fresh], None)
+        bits = self._learn_many(t, ids, encoded, [items[i][2] for i in fresh], None, rows)
         out: list[dict[str, Any] | None] = [None] * len(items)
         resolved, remembered, outcome = self.resolved, self._remembered, self._outcome
-        for index, (wrong, updated) in zip(fresh, bits, strict=True):
+        for index, fp, (wrong, updated) in zip(fresh, prints, bits, strict=True):
             item_id, _, y = items[index]
-            resolved[item_id] = Resolved("example", t, prints[index], y, None, wrong, updated)
+            resolved[item_id] = Resolved("example", t, fp, y, None, wrong, updated)
             remembered.append(item_id)  # as _remember does
             out[index] = outcome(item_id, "applied", wrong, updated)
         self.counts["examples"] += len(fresh)
@@ -524,12 +582,14 @@ class Stream:
         encs: list[Encoded],
         ys: list[int],
         taken: list[Pending] | None,
+        rows: Rows | None = None,
     ) -> list[tuple[int, int]]:
         """Every learner learns the labelled items in order; returns per item the bits of the
         learners that were wrong and of those that updated.
 
         ``taken``: the predictions the labels are for (None: labelled examples, never predicted;
-        "wrong" is then the hypothesis at label time, else the vote). A batch under ``at_once``
+        "wrong" is then the hypothesis at label time, else the vote); ``rows``: the items as
+        :class:`Rows`, when the caller has them. A batch under ``at_once``
         items (``feedback_at_once`` for feedback) goes item by item (:meth:`_learn_one`). A
         larger one goes learner by learner (they do not read each other): the items a learner
         certainly gets right and keeps are skimmed (``Learner.skim``) and counted in bulk,
@@ -552,7 +612,7 @@ class Stream:
                     seat.close_batch(t)
             return bits
         batch = _Labelled(t, ids, encs, ys, taken)
-        batch.rows = Rows(encs)
+        batch.rows = Rows(encs) if rows is None else rows
         if taken is not None:
             width = len(self.seats)
             batch.votes = np.array([p.votes for p in taken], dtype=np.int8).reshape(-1, width)
@@ -673,9 +733,10 @@ class Stream:
         *,
         vote: bool = True,
         checked: bool = False,
-    ) -> tuple[list[Encoded], list[tuple[int, ...]]]:
+    ) -> tuple[list[Encoded], list[tuple[int, ...]], Rows | None]:
         """Encode the items and let every learner vote on them (or only check them, when
-        ``vote`` is false), all or nothing.
+        ``vote`` is false), all or nothing; with them, as :class:`Rows`, a batch of at least
+        ``at_once`` items.
 
         A learner may refuse an item the space accepts (Winnow reads values in [0, 1] only);
         then, as when the space refuses one, the names this call admitted are taken back and
@@ -700,15 +761,74 @@ class Stream:
             for name in space.names[mark:]:
                 del space.index[name]
             del space.names[mark:]
+            del self._digests[mark:]
             where = read if len(encoded) == len(features) else len(encoded)
             error = InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
             raise ItemError(indices[where], error) from exc
-        if vote and len(encoded) >= self.at_once:
-            rows = Rows(encoded)  # each learner votes on the whole batch at once
+        rows = Rows(encoded) if len(encoded) >= self.at_once else None
+        if vote and rows is not None:  # each learner votes on the whole batch at once
             votes = list(zip(*[learner.predict_rows(rows) for learner in panel], strict=True))
         elif vote:
             votes = [tuple([learner.predict_checked(e) for learner in panel]) for e in encoded]
-        return encoded, votes
+        return encoded, votes, rows
+
+    # -- prints ----------------------------------------------------------------------------
+
+    def _digest_table(self) -> array[int]:
+        """The digests of the space's names, in index order (extended to new names)."""
+        table, names = self._digests, self.space.names
+        if len(table) < len(names):
+            table.extend(map(name_digest, names[len(table) :]))
+        return table
+
+    def _prints(self, encoded: list[Encoded], rows: Rows | None) -> list[int]:
+        """The prints of encoded items (``rows``: the same items as :class:`Rows`, or None)."""
+        table = self._digest_table()
+        if rows is None:
+            share = table.__getitem__
+            return [
+                (
+                    sum(map(share, enc.keys))
+                    if enc.vals is None
+                    else sum(map(value_share, map(share, enc.keys), enc.vals))
+                )
+                & PRINT_MASK
+                for enc in encoded
+            ]
+        if len(table):
+            shares = np.frombuffer(table, dtype=np.uint64)[rows.keys]
+        else:  # no names, so no entries
+            shares = np.zeros(0, dtype=np.uint64)
+        if rows.vals is not None:
+            shares = _value_shares(shares, rows.vals)
+        running = np.zeros(len(shares) + 1, dtype=np.uint64)
+        np.cumsum(shares, out=running[1:])
+        starts = rows.starts
+        return cast(list[int], (running[starts[1:]] - running[starts[:-1]]).tolist())
+
+    def _print_of(self, features: Features) -> int | None:
+        """The print of an item not encoded yet (a repeated id's), or None for a shape no
+        encoding accepts."""
+        index, table = self.space.index, self._digest_table()
+        total = 0
+        try:
+            pairs = (
+                [(name, float(v)) for name, v in features.items() if v != 0]
+                if isinstance(features, Mapping)
+                else [(name, 1.0) for name in features]
+            )
+            for name, value in pairs:
+                key = index.get(name)
+                total += value_share(name_digest(name) if key is None else table[key], value)
+        except (TypeError, ValueError, AttributeError):
+            return None
+        return total & PRINT_MASK
+
+    def _same_item(self, fp: int | str, features: Features) -> bool:
+        """True when ``features`` are those of the item remembered with print ``fp``."""
+        if type(fp) is str:  # a text print, from a state of version 1
+            return fp == fingerprint(features)
+        return fp == self._print_of(features)
 
     # -- answers ---------------------------------------------------------------------------
 
@@ -825,7 +945,7 @@ class Stream:
     def to_state(self) -> dict[str, Any]:
         """Everything the log has built, as JSON-safe data (never pickled)."""
         return {
-            "version": 1,
+            "version": STATE_VERSION,
             "config": self.config,
             "created": self.created,
             "last_t": self.last_t,
@@ -852,7 +972,7 @@ class Stream:
     def from_state(
         cls, state: Mapping[str, Any], *, history_points: int, max_remembered: int
     ) -> Stream:
-        if state.get("version") != 1:
+        if state.get("version") not in (1, STATE_VERSION):  # 1: text prints
             raise ValueError(f"unknown stream snapshot version {state.get('version')!r}")
         stream = cls(
             dict(state["config"]),

@@ -49,7 +49,11 @@ def check_stream_header(given: str | None, stream: str, what: str = "body") -> N
 Nat = Annotated[int, Field(strict=True, ge=0)]
 Bit = Annotated[int, Field(strict=True, ge=0, le=1)]
 Num = schemas.FiniteFloat
-Print = Annotated[str, Field(pattern=r"^[0-9a-f]{24}$")]  # an item's fingerprint
+# An item's print: 64 bits (a text digest in states of version 1).
+Print = (
+    Annotated[int, Field(strict=True, ge=0, le=(1 << 64) - 1)]
+    | Annotated[str, Field(pattern=r"^[0-9a-f]{24}$")]
+)
 State = Literal["within", "near", "exceeded", "contradicted"]
 
 
@@ -167,7 +171,7 @@ _Known = tuple[
 
 
 class _State(_Plain):
-    version: Literal[1]
+    version: Literal[1, 2]  # 1: text prints
     config: _Config
     created: Num
     last_t: Num

@@ -1,6 +1,7 @@
 """A stream's fast paths give what the plain definitions give.
 
-The item digest is stored in snapshots, so its fast form must equal its definition; answers and
+Item prints are stored in snapshots, so their fast forms (one item, a batch as arrays) must equal
+their definition, and the text digests of earlier states must still be read; answers and
 outcomes share read-only views of the votes, which must still say what the contract says.
 """
 
@@ -9,14 +10,17 @@ from __future__ import annotations
 import hashlib
 import json
 import random
+import struct
 from collections.abc import Mapping
 from typing import Any
 
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import learners
-from service.streams import Stream, fingerprint
+from service.errors import Conflict
+from service.streams import BATCH_AT_ONCE, ItemError, Stream, fingerprint
 
 NAMES = st.text(min_size=1, max_size=12)
 VALUES = st.one_of(
@@ -59,6 +63,104 @@ def test_the_digest_is_the_defined_one_for_unusual_items() -> None:
         assert fingerprint(item) == defined_digest(item), item
     # DESIGN.md (Features): a flag is 1, absent means 0.
     assert fingerprint(["b", "a"]) == fingerprint({"a": 1, "b": 1.0, "c": 0})
+
+
+# splitmix64's output function (Steele, Lea and Flood, "Fast splittable pseudorandom number
+# generators", OOPSLA 2014; the constants of its published reference code): from memory.
+def splitmix_finish(x: int) -> int:
+    x = ((x ^ (x >> 30)) * 0xBF58476D1CE4E5B9) % 2**64
+    x = ((x ^ (x >> 27)) * 0x94D049BB133111EB) % 2**64
+    return x ^ (x >> 31)
+
+
+def defined_print(features: Any) -> int:
+    """An item's print as defined (service/streams.py, "item prints"): the sum modulo 2**64,
+    over the non-zero entries, of the name's blake2b digest (8 bytes, little-endian) for a value
+    of 1, else of that digest xor the value's IEEE 754 bits, mixed by splitmix64's output
+    function."""
+    if isinstance(features, Mapping):
+        pairs = [(k, float(v)) for k, v in features.items() if v != 0]
+    else:
+        pairs = [(k, 1.0) for k in features]
+    total = 0
+    for name, value in pairs:
+        # Reference: Python's standard library (hashlib.blake2b, struct).
+        raw = hashlib.blake2b(name.encode("utf-8", "surrogatepass"), digest_size=8).digest()
+        digest = int.from_bytes(raw, "little")
+        if value != 1.0:
+            digest = splitmix_finish(digest ^ struct.unpack("<Q", struct.pack("<d", value))[0])
+        total += digest
+    return total % 2**64
+
+
+FINITE = st.one_of(
+    st.floats(allow_nan=False, allow_infinity=False, min_value=-1e9, max_value=1e9),
+    st.sampled_from([0, 0.0, 1, 1.0, True, 0.5, -1.0]),
+)
+ITEM = st.one_of(
+    st.lists(NAMES, unique=True, max_size=8), st.dictionaries(NAMES, FINITE, max_size=8)
+)
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(ITEM, min_size=1, max_size=3 * BATCH_AT_ONCE))
+def test_prints_are_the_defined_sum_one_by_one_and_in_batches(items: list[Any]) -> None:
+    """The prints kept for labelled examples, whether computed item by item or over a batch's
+    arrays, and the print of an item not encoded yet, all equal the definition."""
+    one, many = (
+        Stream(
+            stream_config([{"name": "p", "kind": "perceptron", "params": {}}], "p", features=10**4),
+            0.0,
+            history_points=10,
+            max_remembered=10**4,
+        )
+        for _ in range(2)
+    )
+    for k, item in enumerate(items):
+        one.apply_examples(1.0, [(f"i{k}", item, k % 2)])
+    many.apply_examples(1.0, [(f"i{k}", item, k % 2) for k, item in enumerate(items)])
+    for k, item in enumerate(items):
+        expected = defined_print(item)
+        assert one.resolved[f"i{k}"].fp == many.resolved[f"i{k}"].fp == expected, item
+        assert many._print_of(item) == expected
+    # DESIGN.md (Features): a flag is 1, absent means 0; the form does not matter.
+    assert one._print_of(["b", "a"]) == one._print_of({"a": 1, "b": 1.0, "c": 0})
+
+
+def test_a_state_with_text_prints_still_tells_repeats_from_conflicts() -> None:
+    """A state of version 1 (text digests) restores; its remembered and waiting ids answer a
+    repeat as a duplicate and other features as a conflict."""
+    stream = two_learner_stream(("e", "p"))
+    items = {f"i{n}": [f"f{n % 7}", f"f{(n + 3) % 11}"] for n in range(40)}
+    waiting = list(items.items())[:20]
+    stream.apply_predict(1.0, waiting)
+    stream.apply_feedback(2.0, [(item_id, 1) for item_id, _ in waiting[:10]])
+    examples = [(item_id, features, 0) for item_id, features in list(items.items())[20:]]
+    stream.apply_examples(3.0, examples)
+    state = json.loads(json.dumps(stream.to_state()))
+    assert state["version"] == 2
+    state["version"] = 1
+    for entry in state["pending"]:
+        entry[6] = fingerprint(items[entry[0]])
+    for entry in state["resolved"]:
+        entry[3] = fingerprint(items[entry[0]])
+    old = Stream.from_state(state, history_points=50, max_remembered=1000)
+    assert all(isinstance(r.fp, str) for r in old.resolved.values())
+    for probe in (old, stream):
+        again = probe.apply_predict(4.0, waiting[5:15])  # labelled ones and waiting ones
+        assert all(answer["duplicate"] for answer in again)
+        repeats = probe.apply_examples(4.0, examples[:5])
+        assert {r["status"] for r in repeats} == {"duplicate"}
+        changes = [
+            ("predict", ("i3", ["f3", "f9"])),
+            ("predict", ("i14", {"f0": 0.5})),
+            ("examples", ("i25", ["f4"], 0)),
+        ]
+        for kind, item in changes:
+            apply = probe.apply_predict if kind == "predict" else probe.apply_examples
+            with pytest.raises(ItemError) as refused:
+                apply(5.0, [item])
+            assert isinstance(refused.value.error, Conflict)
 
 
 def stream_config(

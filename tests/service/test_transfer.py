@@ -305,7 +305,7 @@ BAD: list[tuple[str, Any, str]] = [
     ("a later version", lambda d: put(d, "version", 2), "version"),
     ("no state", lambda d: drop(d, "state"), "state"),
     ("an unknown field", lambda d: put(d, "extra", 1), "extra"),
-    ("a later state version", lambda d: put(d, "state.version", 2), "state.version"),
+    ("a later state version", lambda d: put(d, "state.version", 3), "state.version"),
     ("a bad stream id", lambda d: put(d, "stream", "Not An Id"), "stream"),
     ("another stream", lambda d: put(d, "stream", "elsewhere"), "state.config.stream"),
     (
