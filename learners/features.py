@@ -30,6 +30,8 @@ Item = Mapping[str, float] | Sequence[str]
 
 SPACE_STATE_VERSION = 1
 
+Flat = tuple[list[int], list[int]]  # items' keys end to end, and each item's count of them
+
 
 class Encoded:
     """One item in a space's indices: ``keys`` (list of ints) and ``vals`` (None when all are 1).
@@ -93,14 +95,22 @@ class Rows:
 
     __slots__ = ("encs", "keys", "vals", "starts", "owner", "sizes", "widest", "_at", "_signs")
 
-    def __init__(self, encs: Sequence[Encoded]) -> None:
+    def __init__(self, encs: Sequence[Encoded], flat: Flat | None = None) -> None:
+        """``flat``: the items' keys end to end and each item's count of them, when the caller
+        has them (:meth:`FeatureSpace.encode_flags`)."""
         n = len(encs)
         self.encs = encs
-        self.sizes = np.fromiter((len(e.keys) for e in encs), dtype=np.int64, count=n)
+        if flat is None:
+            self.sizes = np.fromiter((len(e.keys) for e in encs), dtype=np.int64, count=n)
+        else:
+            self.sizes = np.array(flat[1], dtype=np.int64)
         self.starts = np.zeros(n + 1, dtype=np.int64)
         np.cumsum(self.sizes, out=self.starts[1:])
         total = int(self.starts[-1])
-        self.keys = np.fromiter(chain.from_iterable(e.keys for e in encs), np.int64, total)
+        if flat is None:
+            self.keys = np.fromiter(chain.from_iterable(e.keys for e in encs), np.int64, total)
+        else:
+            self.keys = np.array(flat[0], dtype=np.int64)
         if all(e.binary for e in encs):
             self.vals: np.ndarray | None = None
         else:
@@ -212,6 +222,30 @@ class FeatureSpace:
         if -1 in keys:
             self._admit(names, keys)
         return Encoded(keys, vals)
+
+    def encode_flags(self, items: list[list[str]]) -> tuple[list[Encoded], Flat] | None:
+        """Encode lists of flag names checked as for :meth:`encode` (distinct non-empty
+        strings) in one pass over all their names, admitting new ones in the order they occur;
+        return the items and their keys end to end with each item's count (for :class:`Rows`).
+        None, with nothing admitted, when a name would be refused: :meth:`encode`, item by item,
+        then tells which and why."""
+        sizes = list(map(len, items))
+        names = list(chain.from_iterable(items))
+        keys = list(map(self.index.get, names, repeat(-1, len(names))))
+        if -1 in keys:
+            fresh = dict.fromkeys(name for name, key in zip(names, keys, strict=True) if key == -1)
+            if self.closed or len(self.names) + len(fresh) > self.size:
+                return None
+            for name in fresh:
+                self.index[name] = len(self.names)
+                self.names.append(name)
+            keys = list(map(self.index.__getitem__, names))
+        encs = []
+        at = 0
+        for size in sizes:
+            encs.append(Encoded(keys[at : at + size], None))
+            at += size
+        return encs, (keys, sizes)
 
     def _admit(self, names: list[str], keys: list[int]) -> None:
         """Fill the -1 slots of ``keys`` with new indices for their names, all or none."""

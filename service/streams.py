@@ -750,9 +750,15 @@ class Stream:
         encoded: list[Encoded] = []
         votes: list[tuple[int, ...]] = []
         read = 0  # items every learner has read
+        flat = None
+        if checked and len(features) >= self.at_once and all(type(f) is list for f in features):
+            done = space.encode_flags(cast(list[list[str]], features))
+            if done is not None:
+                encoded, flat = done
         try:
-            for item in features:
-                encoded.append(space.encode(item, checked))
+            if flat is None:
+                for item in features:
+                    encoded.append(space.encode(item, checked))
             for enc in encoded:
                 for learner in checkers:
                     learner.check(enc)
@@ -765,7 +771,7 @@ class Stream:
             where = read if len(encoded) == len(features) else len(encoded)
             error = InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
             raise ItemError(indices[where], error) from exc
-        rows = Rows(encoded) if len(encoded) >= self.at_once else None
+        rows = Rows(encoded, flat) if len(encoded) >= self.at_once else None
         if vote and rows is not None:  # each learner votes on the whole batch at once
             votes = list(zip(*[learner.predict_rows(rows) for learner in panel], strict=True))
         elif vote:

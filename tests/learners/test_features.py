@@ -5,8 +5,11 @@ from __future__ import annotations
 import json
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from learners import FeatureError, FeatureSpace, ParameterError, StateError
+from learners.features import Rows
 
 
 # DESIGN.md (Features): a flag is 1, absent means 0; an open space admits names until n.
@@ -71,3 +74,39 @@ def test_state_round_trip_keeps_indices() -> None:
     assert FeatureSpace.from_state(closed.to_state()).closed
     with pytest.raises(StateError):
         FeatureSpace.from_state({"version": 99, "names": []})
+
+
+FLAG_LISTS = st.lists(
+    st.lists(st.sampled_from([f"f{i}" for i in range(12)]), unique=True, max_size=6),
+    max_size=12,
+)
+
+
+@settings(max_examples=200, deadline=None)
+@given(FLAG_LISTS, st.integers(min_value=1, max_value=14), st.booleans())
+def test_flag_lists_encode_at_once_as_one_by_one(
+    items: list[list[str]], size: int, closed: bool
+) -> None:
+    """encode_flags gives what encode gives item by item (the same keys, the same names
+    admitted in the same order), or None with nothing admitted where one item would be
+    refused; Rows built from its flat keys equal Rows built from the items."""
+    declared: int | list[str] = [f"f{i}" for i in range(size)] if closed else size
+    alone, at_once = FeatureSpace(declared), FeatureSpace(declared)
+    try:
+        expected = [alone.encode(item) for item in items]
+    except FeatureError:
+        expected = None
+    done = at_once.encode_flags(items)
+    if expected is None:
+        assert done is None
+        assert at_once.names == ([] if not closed else declared)
+        return
+    assert done is not None
+    encs, flat = done
+    assert [e.keys for e in encs] == [e.keys for e in expected]
+    assert all(e.binary and e.vals is None for e in encs)
+    assert at_once.names == alone.names and at_once.index == alone.index
+    one, other = Rows(encs, flat), Rows(expected)
+    for part in ("keys", "sizes", "starts", "owner"):
+        assert getattr(one, part).tolist() == getattr(other, part).tolist(), part
+    assert one.vals is None and other.vals is None
