@@ -12,7 +12,9 @@ The document::
 
 ``state`` is the very snapshot the store writes for durability (``Stream.to_state``): the
 configuration, the feature space, every learner's state, each seat's ledger (epochs, alerts,
-history, G, totals), the predictions waiting for labels and the ids remembered for idempotency.
+history, G, totals), the predictions waiting for labels and the ids remembered for idempotency,
+each with its item's print (state version 2: a 64-bit integer; a state of version 1, with text
+prints, is read too: ``service.streams``, "item prints").
 An imported copy answers every later request as the source would have. ``exported`` is the
 source's clock at the export; ``seq`` is the position of the stream's last write in the source's
 log, so two exports from one shard with the same ``seq`` hold the same writes (the check that
