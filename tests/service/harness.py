@@ -10,7 +10,7 @@ from __future__ import annotations
 import asyncio
 import threading
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import AbstractContextManager, contextmanager
 from typing import Any
 
@@ -20,6 +20,7 @@ from anyio.from_thread import BlockingPortal, start_blocking_portal
 from fastapi import FastAPI
 
 from service.demo import free_port
+from service.streams import fingerprint
 
 
 class Clock:
@@ -110,3 +111,14 @@ def served(app: FastAPI) -> Iterator[str]:
     finally:
         server.should_exit = True
         thread.join(timeout=20)
+
+
+def with_text_prints(state: dict[str, Any], features_of: Callable[[str], Any]) -> None:
+    """Make a stream state (``Stream.to_state``, parsed JSON) one of version 1, whose prints
+    were text digests (``service.streams.fingerprint``) of each id's features."""
+    assert state["version"] == 2
+    state["version"] = 1
+    for entry in state["pending"]:  # [id, t, keys, vals, votes, epochs, print]
+        entry[6] = fingerprint(features_of(entry[0]))
+    for entry in state["resolved"]:  # [id, kind, at, print, label, votes, wrong, updated]
+        entry[3] = fingerprint(features_of(entry[0]))

@@ -21,6 +21,7 @@ from hypothesis import strategies as st
 import learners
 from service.errors import Conflict
 from service.streams import BATCH_AT_ONCE, ItemError, Stream, fingerprint
+from tests.service.harness import with_text_prints
 
 NAMES = st.text(min_size=1, max_size=12)
 VALUES = st.one_of(
@@ -138,12 +139,7 @@ def test_a_state_with_text_prints_still_tells_repeats_from_conflicts() -> None:
     examples = [(item_id, features, 0) for item_id, features in list(items.items())[20:]]
     stream.apply_examples(3.0, examples)
     state = json.loads(json.dumps(stream.to_state()))
-    assert state["version"] == 2
-    state["version"] = 1
-    for entry in state["pending"]:
-        entry[6] = fingerprint(items[entry[0]])
-    for entry in state["resolved"]:
-        entry[3] = fingerprint(items[entry[0]])
+    with_text_prints(state, items.__getitem__)
     old = Stream.from_state(state, history_points=50, max_remembered=1000)
     assert all(isinstance(r.fp, str) for r in old.resolved.values())
     for probe in (old, stream):

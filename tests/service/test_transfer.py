@@ -28,10 +28,9 @@ from prometheus_client import CollectorRegistry
 from service.app import create_app
 from service.settings import Settings
 from service.store import FILE_NAME
-from service.streams import fingerprint
 from service.transfer_checks import FORMAT, HEADER
 from tests.service.conftest import MakeApp
-from tests.service.harness import Clock, Running, running, served
+from tests.service.harness import Clock, Running, running, served, with_text_prints
 
 STREAM = "lockers-moving"
 FLAGS = [f"f{i}" for i in range(8)]
@@ -150,6 +149,17 @@ def send(api: Running, step: tuple[str, str, Any, float]) -> Any:
     return api.request(method, f"/v1/streams/{STREAM}{suffix}", json=body)
 
 
+def after_the_move(source: Running, target: Running, clock: Clock) -> list[Any]:
+    """Send AFTER_THE_MOVE to both; each answer of the copy must be the source's."""
+    answers = []
+    for step in AFTER_THE_MOVE:
+        a, b = send(source, step), send(target, step)
+        assert (b.status_code, b.json()) == (a.status_code, a.json()), step
+        answers.append(a)
+        clock.advance(step[3])
+    return answers
+
+
 def views(api: Running) -> dict[str, Any]:
     return {suffix: ok(api.get(f"/v1/streams/{STREAM}{suffix}")) for suffix in VIEWS}
 
@@ -187,12 +197,7 @@ def test_the_imported_copy_answers_as_the_source_would(
             again = ok(target.get(EXPORT))
             assert {**again, "seq": 0} == {**document, "seq": 0}
 
-            answers = []
-            for step in AFTER_THE_MOVE:
-                a, b = send(source, step), send(target, step)
-                assert (b.status_code, b.json()) == (a.status_code, a.json()), step
-                answers.append(a)
-                clock.advance(step[3])
+            answers = after_the_move(source, target, clock)
             # The traffic met what it was meant to meet.
             assert answers[0].json()["status"] == "duplicate"
             assert {item["status"] for item in answers[1].json()["items"]} == {"duplicate"}
@@ -225,22 +230,11 @@ def test_a_document_with_text_prints_imports_and_answers_alike(
     with running(make_app()) as source:
         before_the_move(source, clock)
         document = ok(source.get(EXPORT))
-        state = document["state"]
-        assert state["version"] == 2
-        state["version"] = 1
-        for entry in state["pending"]:
-            entry[6] = fingerprint(ITEMS[entry[0]])
-        for entry in state["resolved"]:
-            entry[3] = fingerprint(ITEMS[entry[0]])
+        with_text_prints(document["state"], ITEMS.__getitem__)
         with running(make_app(data_dir=tmp_path / "target")) as target:
             ok(target.post(IMPORT, json=document, headers={HEADER: STREAM}), 201)
             assert views(target) == views(source)
-            answers = []
-            for step in AFTER_THE_MOVE:
-                a, b = send(source, step), send(target, step)
-                assert (b.status_code, b.json()) == (a.status_code, a.json()), step
-                answers.append(b)
-                clock.advance(step[3])
+            answers = after_the_move(source, target, clock)
             # Repeats and conflicts were told apart on the copy (see the test above).
             assert answers[5].json()["duplicate"] is True and answers[6].status_code == 409
             assert answers[11].status_code == 409
