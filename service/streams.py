@@ -988,6 +988,7 @@ class Stream:
         )
         stream.last_t = float(state["last_t"])
         stream.space.adopt(state["space"]["names"])
+        stream._digest_table()  # now, at the restart, rather than in the first write after it
         for seat, seat_state in zip(stream.seats, state["seats"], strict=True):
             seat.restore(seat_state, stream.space)
         stream.epochs = tuple(s.epoch for s in stream.seats)
