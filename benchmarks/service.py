@@ -374,16 +374,21 @@ def gc_collections(port: int) -> dict[str, float]:
     return out
 
 
+def probe_database(path: Path) -> sqlite3.Connection:
+    """A new SQLite file in WAL mode with ``synchronous=FULL`` (what the store's durability
+    ``full`` amounts to) and one table, ``probe(seq, body)``."""
+    conn = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
+    conn.execute("PRAGMA journal_mode=WAL")
+    conn.execute("PRAGMA synchronous=FULL")
+    conn.execute("CREATE TABLE probe (seq INTEGER PRIMARY KEY, body TEXT NOT NULL)")
+    return conn
+
+
 def commit_seconds(directory: Path, commits: int = 200) -> tuple[float, float]:
-    """The median and mean time of one small SQLite commit in ``directory`` with the store's
-    settings (WAL, ``synchronous=FULL``): what a durable write waits for at least, besides its
-    own work."""
-    path = directory / "commit-probe.sqlite3"
-    conn = sqlite3.connect(path, isolation_level=None)
+    """The median and mean time of one small durable SQLite commit in ``directory`` (WAL,
+    ``synchronous=FULL``): what a durable write waits for at least, besides its own work."""
+    conn = probe_database(directory / "commit-probe.sqlite3")
     try:
-        conn.execute("PRAGMA journal_mode=WAL")
-        conn.execute("PRAGMA synchronous=FULL")
-        conn.execute("CREATE TABLE probe (seq INTEGER PRIMARY KEY, body TEXT NOT NULL)")
         times = []
         for seq in range(commits):
             t0 = time.perf_counter()
@@ -401,11 +406,7 @@ def busy_commit_seconds(directory: Path, seconds: float = 2.0) -> float:
     made by a second thread while this thread runs Python, as a busy event loop does: that
     thread waits for the interpreter lock after its calls into SQLite. (The store therefore
     writes on the loop's own thread and syncs through a helper process.)"""
-    path = directory / "busy-probe.sqlite3"
-    conn = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
-    conn.execute("PRAGMA journal_mode=WAL")
-    conn.execute("PRAGMA synchronous=FULL")
-    conn.execute("CREATE TABLE probe (seq INTEGER PRIMARY KEY, body TEXT NOT NULL)")
+    conn = probe_database(directory / "busy-probe.sqlite3")
     insert = "INSERT INTO probe VALUES (?, ?)" + ", (?, ?)" * 24
     times: list[float] = []
     stop = threading.Event()

@@ -233,12 +233,11 @@ class FeatureSpace:
         names = list(chain.from_iterable(items))
         keys = list(map(self.index.get, names, repeat(-1, len(names))))
         if -1 in keys:
-            fresh = dict.fromkeys(name for name, key in zip(names, keys, strict=True) if key == -1)
-            if self.closed or len(self.names) + len(fresh) > self.size:
+            fresh = list(dict.fromkeys(n for n, key in zip(names, keys, strict=True) if key == -1))
+            try:
+                self._admit(fresh, [-1] * len(fresh))
+            except FeatureError:
                 return None
-            for name in fresh:
-                self.index[name] = len(self.names)
-                self.names.append(name)
             keys = list(map(self.index.__getitem__, names))
         encs = []
         at = 0

@@ -239,11 +239,9 @@ class Store:
             if not self._closing:
                 self._fail(error or StoreFailed(f"The WAL sync helper ended ({helper.poll()})."))
             return
-        data = self._answers + data
-        whole = len(data) - len(data) % walsync.TOKEN
-        self._answers = data[whole:]
-        if whole:
-            self._synced(int.from_bytes(data[whole - walsync.TOKEN : whole], "big"))
+        last, self._answers = walsync.last_token(self._answers + data)
+        if last:
+            self._synced(int.from_bytes(last, "big"))
 
     def _synced(self, token: int) -> None:
         """Resolve the writes of every transaction up to ``token`` (their WAL frames are synced)."""

@@ -764,10 +764,7 @@ class Stream:
                     learner.check(enc)
                 read += 1
         except LearnerError as exc:
-            for name in space.names[mark:]:
-                del space.index[name]
-            del space.names[mark:]
-            del self._digests[mark:]
+            space.forget(mark)
             where = read if len(encoded) == len(features) else len(encoded)
             error = InvalidInput(str(exc), field=exc.field, rule=exc.rule, value=exc.value)
             raise ItemError(indices[where], error) from exc
@@ -781,7 +778,9 @@ class Stream:
     # -- prints ----------------------------------------------------------------------------
 
     def _digest_table(self) -> array[int]:
-        """The digests of the space's names, in index order (extended to new names)."""
+        """The digests of the space's names, in index order (extended to new names). Names a
+        refused batch takes back (:meth:`_encode`) are never in it: it is extended only once
+        encoding succeeded, or before encoding starts."""
         table, names = self._digests, self.space.names
         if len(table) < len(names):
             table.extend(map(name_digest, names[len(table) :]))

@@ -28,6 +28,13 @@ def sync_file(path: str) -> bool:
     return True
 
 
+def last_token(data: bytes) -> tuple[bytes, bytes]:
+    """The last whole token in ``data`` (empty when there is none) and the part of a token
+    after the whole ones (to be read on). The store reads the helper's answers with it too."""
+    whole = len(data) - len(data) % TOKEN
+    return data[max(0, whole - TOKEN) : whole], data[whole:]
+
+
 def main() -> int:
     path = sys.argv[1]
     pending = b""
@@ -35,12 +42,10 @@ def main() -> int:
         data = os.read(0, 65536)
         if not data:
             return 0
-        data = pending + data
-        whole = len(data) - len(data) % TOKEN
-        pending = data[whole:]
-        if whole:
+        last, pending = last_token(pending + data)
+        if last:
             sync_file(path)
-            os.write(1, data[whole - TOKEN : whole])
+            os.write(1, last)
 
 
 if __name__ == "__main__":
