@@ -10,11 +10,12 @@ What it runs, in order:
 1. a bare FastAPI endpoint (``benchmarks.bare_app``) that parses a predict body with the service's
    own request model and answers a constant: the floor of HTTP + FastAPI + pydantic; and the
    service (``mistake-ledger serve``, a temporary data directory, default durability FULL) with
-   one stream whose panel has six learners on an open, sparse flag space. Both run side by side:
-   single predict calls with 4, 16 and 64 in flight (the same bodies and client for both), in
-   rounds that alternate the two (``--rounds``, a fresh stream per service round), so that the
-   machine's speed, which other work on it moves by tens of percent from minute to minute,
-   weighs on both sides of each ratio alike;
+   one stream whose panel has six learners on an open, sparse flag space; and the same service
+   with durability NORMAL (a write answers once committed, without waiting for a sync). All three
+   run side by side: single predict calls with 4, 16 and 64 in flight (the same bodies and
+   client for each), in rounds that alternate them (``--rounds``, a fresh stream per service
+   round), so that the machine's speed, which other work on it moves by tens of percent from
+   minute to minute, weighs on both sides of each ratio alike;
 2. then on the service: single feedback calls, then batches of 1000 through predict, feedback
    and examples;
 3. a fresh service holding 10,000 such streams, each given a handful of items (four labelled
@@ -328,6 +329,7 @@ class Figures:
     # calls in flight -> one loop per round, alternating: bare endpoint, service, bare, ...
     bare: dict[int, list[Loop]] = field(default_factory=dict)
     predict: dict[int, list[Loop]] = field(default_factory=dict)
+    normal: dict[int, list[Loop]] = field(default_factory=dict)  # the same, durability NORMAL
     feedback: Loop | None = None
     # One durable SQLite commit: (median, mean) seconds.
     commit_seconds: tuple[float, float] = (float("nan"), float("nan"))
@@ -335,7 +337,6 @@ class Figures:
     batch: dict[str, tuple[int, Loop]] = field(default_factory=dict)  # items sent, the loop
     memory: dict[str, float] = field(default_factory=dict)
     panel: dict[str, float] = field(default_factory=dict)  # seconds per item, in process
-    normal: Loop | None = None  # single predict with durability NORMAL
     snapshot: tuple[int, float, int] | None = None  # ids held, seconds, bytes
     collections: dict[str, float] = field(default_factory=dict)  # gc generation -> count
 
@@ -458,11 +459,18 @@ def measure_service(
     figures: Figures,
     console: Console,
 ) -> None:
-    port, bare_port = free_port(), free_port()
+    port, bare_port, normal_port = free_port(), free_port(), free_port()
     env = service_env(args, MISTAKE_LEDGER_SWEEP_INTERVAL_SECONDS="3600")
+    normal_env = dict(env, MISTAKE_LEDGER_DURABILITY="normal")
     with (
         server(bare_command(bare_port), server_env(), work / "bare.log", bare_port) as bare,
         server(serve_command(port, work / "data"), env, work / "service.log", port) as srv,
+        server(
+            serve_command(normal_port, work / "normal"),
+            normal_env,
+            work / "normal.log",
+            normal_port,
+        ) as normal,
     ):
         create_stream(port, STREAM)
         base = f"/v1/streams/{STREAM}"
@@ -472,10 +480,11 @@ def measure_service(
             loop = run_loop(port, path, sent, threads=threads, seconds=args.seconds, pid=srv.pid)
             return checked(loop, kind)
 
-        # Single predicts, level by level, in rounds that alternate the bare endpoint and the
-        # service, so that a change in this machine's speed during the run (other work on it)
-        # touches both sides of each ratio alike. Each service round has a stream of its own
-        # (the same bodies, so fresh ids there); the first is the stream the rest uses.
+        # Single predicts, level by level, in rounds that alternate the bare endpoint, the
+        # service and the service with durability NORMAL, so that a change in this machine's
+        # speed during the run (other work on it) touches both sides of each ratio alike. Each
+        # service round has a stream of its own (the same bodies, so fresh ids there); the first
+        # is the stream the rest uses.
         warm, rest = bodies[: args.warmup], bodies[args.warmup :]
         first: Loop | None = None
         collected = gc_collections(port)
@@ -495,10 +504,19 @@ def measure_service(
                 loop = timed("predict", rest, level, name)
                 figures.predict.setdefault(level, []).append(loop)
                 first = loop if first is None else first
-                ratio = loop.rate / figures.bare[level][-1].rate
+                name = f"{STREAM}-{level}-{turn}"
+                create_stream(normal_port, name)
+                path = f"/v1/streams/{name}/predict"
+                checked(run_loop(normal_port, path, warm, threads=level, seconds=10), "warm-up")
+                unsynced = run_loop(
+                    normal_port, path, rest, threads=level, seconds=args.seconds, pid=normal.pid
+                )
+                figures.normal.setdefault(level, []).append(checked(unsynced, "predict (normal)"))
+                rate = figures.bare[level][-1].rate
                 console.print(
                     f"  single predict, {level} in flight, round {turn + 1}: "
-                    f"{loop.calls} calls, {ratio:.0%} of the bare endpoint's rate"
+                    f"{loop.calls} calls, {loop.rate / rate:.0%} of the bare endpoint's rate; "
+                    f"durability NORMAL: {unsynced.rate / rate:.0%}"
                 )
         assert first is not None
         loop = first
@@ -542,24 +560,6 @@ def measure_service(
             f"{row['name']} {row['state']} ({row['updates']} updates)" for row in rows
         )
         console.print(f"  batches done; ledger: {states}")
-
-
-def measure_normal(
-    work: Path, bodies: list[bytes], args: argparse.Namespace, figures: Figures
-) -> None:
-    """Single predict calls with durability NORMAL (no fsync per commit), for comparison."""
-    port = free_port()
-    env = service_env(args, MISTAKE_LEDGER_DURABILITY="normal")
-    with server(serve_command(port, work / "normal"), env, work / "normal.log", port) as srv:
-        create_stream(port, STREAM)
-        path = f"/v1/streams/{STREAM}/predict"
-        warm = bodies[: args.warmup]
-        checked(run_loop(port, path, warm, threads=CONCURRENCY, seconds=10), "warm-up")
-        rest = bodies[args.warmup :]
-        loop = run_loop(
-            port, path, rest, threads=CONCURRENCY, seconds=args.seconds / 2, pid=srv.pid
-        )
-        figures.normal = checked(loop, "predict (normal)")
 
 
 @contextmanager
@@ -795,7 +795,19 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
             f">= {GOAL_RATIO:.0%}",
             verdict(met),
         )
-    loop_row(f"service, durability NORMAL: the same, {CONCURRENCY} in flight", figures.normal)
+        unsynced = figures.normal.get(level, [])
+        if unsynced:
+            loop_row("service, durability NORMAL: the same", merged(unsynced))
+            rounds = ", ".join(
+                f"{s.rate / b.rate:.0%}" for b, s in zip(bares, unsynced, strict=False)
+            )
+            table.add_row(
+                f"  NORMAL / bare endpoint (rounds: {rounds})",
+                f"{merged(unsynced).rate / bare.rate:.0%}",
+                "",
+                "",
+                f"{merged(unsynced).cpu_per_call / bare.cpu_per_call:.1f}x",
+            )
     loop_row("service: single feedback", figures.feedback)
     for kind in ("predict", "feedback", "examples"):
         if kind not in figures.batch:
@@ -894,7 +906,8 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
         "young-generation GC threshold. "
         f"Panel: {', '.join(p['name'] for p in PANEL)} on an open space of {SPACE_SIZE:,} flags "
         f"(about {FLAGS_PER_ITEM + 1} on per item). Durability FULL (the default): a write "
-        f"answers after its commit's fsync. {os.cpu_count()} cores, Python "
+        "answers after its commit's fsync; NORMAL: once committed, before the sync (it survives "
+        f"a crash of the process, not of the machine). {os.cpu_count()} cores, Python "
         f"{platform.python_version()}; other work on this machine moves the figures."
     )
     for what, met in verdicts:
@@ -930,8 +943,6 @@ def main(argv: list[str] | None = None) -> None:
         figures.busy_commit_seconds = busy_commit_seconds(work)
         console.print("bare endpoint and service ...")
         measure_service(work, bodies, labels, source, args, figures, console)
-        console.print("service, durability normal ...")
-        measure_normal(work, bodies, args, figures)
         if not args.skip_memory:
             console.print(f"memory: {args.streams:,} streams ...")
             measure_memory(work, source, args, figures)
