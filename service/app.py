@@ -209,7 +209,7 @@ def create_app(
     app.state.metrics_registry = metrics_registry
     app.state.sender = sender
     errors.install(app)
-    writes = Writes(streams, guard)
+    writes = Writes(streams, guard, hold_for=settings.group_commit_max_wait_seconds)
     # Ordinary predict/feedback/examples requests are answered in front of the framework; all
     # else goes on to it and its routes (service/writes.py).
     app.fast_writes = FastWrites(

@@ -56,6 +56,13 @@ class Settings(BaseSettings):
         description="SQLite synchronous mode: full survives power loss, normal only a crash",
     )
     group_commit_max_events: int = Field(1000, ge=1, description="most events in one commit")
+    group_commit_max_wait_seconds: float = Field(
+        0.002,
+        ge=0,
+        description="while more write requests keep starting in each turn of the event loop, "
+        "their commit waits for them, at most this long; a lone request never waits (0: commit "
+        "after each turn)",
+    )
     snapshot_every_events: int = Field(5000, ge=1, description="events per stream per snapshot")
     snapshot_every_items: int = Field(
         100_000, ge=1, description="items per stream per snapshot (whichever comes first)"

@@ -32,6 +32,7 @@ import json
 import logging
 import re
 import threading
+import time
 from collections.abc import Awaitable, Callable
 from concurrent.futures import Future
 from typing import Any
@@ -89,13 +90,26 @@ class Writes:
 
     Writes that the event loop runs back to back share one transaction and one sync
     (:meth:`_share_commit`, ``Store.hold``); the store tells the loop when they are durable
-    (:meth:`_committed`).
+    (:meth:`_committed`). ``hold_for``: the longest a commit waits for more writes while they
+    keep coming (``clock``: seconds, for that bound).
     """
 
-    def __init__(self, streams: Registry, guard: Guard) -> None:
+    def __init__(
+        self,
+        streams: Registry,
+        guard: Guard,
+        *,
+        hold_for: float = 0.0,
+        clock: Callable[[], float] = time.monotonic,
+    ) -> None:
         self.streams = streams
         self.guard = guard
+        self.hold_for = hold_for
+        self._clock = clock
         self._holding = False
+        self._started = 0  # writes begun on the loop
+        self._seen = 0  # ... as counted when the hold last looked
+        self._since = 0.0  # when the hold began
         self._lock = threading.Lock()
         self._finished: list[asyncio.Future[None]] = []  # committed, not yet told on the loop
         self._rung = False
@@ -145,14 +159,25 @@ class Writes:
 
     def _share_commit(self) -> None:
         """Hold the store's next commit until the event loop has run the tasks that are ready
-        now: requests that arrived together then share one commit (one fsync). Idle, the
-        hold ends as soon as this request's step is done."""
+        now: requests that arrived together then share one commit (one fsync). While more
+        writes keep starting, turn after turn, the hold goes on, for at most ``hold_for``
+        seconds: under load one commit and its sync then serve many requests, which costs the
+        loop less per request (benchmarks/service.py: with 16 single predicts in flight, about
+        a fifth less CPU per call). Idle, the hold ends as soon as this request's step is done,
+        and a turn without a new write ends it too."""
+        self._started += 1
         if not self._holding:
             self._holding = True
+            self._seen = self._started
+            self._since = self._clock()
             self.streams.store.hold()
             asyncio.get_running_loop().call_soon(self._release)
 
     def _release(self) -> None:
+        if self._started != self._seen and self._clock() - self._since < self.hold_for:
+            self._seen = self._started  # more came in this turn: look again after the next
+            asyncio.get_running_loop().call_soon(self._release)
+            return
         self._holding = False
         self.streams.store.release()
 

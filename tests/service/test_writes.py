@@ -10,14 +10,17 @@ Two differential checks (common practice for a fast path beside a reference one)
   routes alone) get the same status and the same JSON, and leave the same ledger.
 
 And the store's hold: writes that arrive together share one commit, and a hold that is never
-released delays a commit only for a moment.
+released delays a commit only for a moment; while writes keep arriving turn after turn, they
+share one commit up to the hold's bound in time, and a lone write is never held.
 """
 
 from __future__ import annotations
 
+import asyncio
 import json
 import re
 import threading
+from concurrent.futures import Future
 from functools import partial
 from pathlib import Path
 from typing import Any
@@ -33,10 +36,11 @@ from pydantic import BaseModel, ValidationError
 from service import schemas
 from service.app import create_app
 from service.bodies import NonFinite, quick_examples, quick_feedback, quick_predict
+from service.security import Guard, Principal
 from service.settings import Settings
 from service.store import Store
 from service.store import dumps as store_dumps
-from service.writes import FastWrites, render
+from service.writes import FastWrites, Writes, render
 from tests.service.harness import Clock, Running, running
 
 # -- the quick readers against the models ------------------------------------------------------
@@ -452,3 +456,90 @@ def test_an_unexpected_failure_is_the_internal_error_on_both_paths(
             assert api.get("/v1/streams/lane-a").json()["known_features"] == 0
     assert answers[True] == answers[False]
     assert answers[True][0] == 500 and answers[True][1]["error"]["code"] == "internal"
+
+
+# -- holding a commit while writes keep arriving (service.writes.Writes) ------------------------
+
+
+class Committer:
+    """The store's hold and commit, counted: writes wait while held; the last release commits
+    them as one group."""
+
+    def __init__(self) -> None:
+        self.held = 0
+        self.kept: list[Future[int]] = []
+        self.groups: list[int] = []  # writes per commit, in order
+
+    def hold(self) -> None:
+        self.held += 1
+
+    def release(self) -> None:
+        self.held -= 1
+        if not self.held and self.kept:
+            self.groups.append(len(self.kept))
+            for future in self.kept:
+                future.set_result(0)
+            self.kept = []
+
+
+class Streams:
+    """Stands in for the registry: each predict is one write for the committer."""
+
+    def __init__(self) -> None:
+        self.store = Committer()
+
+    def predict(
+        self, stream: str, items: list[Any], batch: bool
+    ) -> tuple[list[dict[str, Any]], Future[int]]:
+        future: Future[int] = Future()
+        self.store.kept.append(future)
+        return [{"id": item_id} for item_id, _ in items], future
+
+
+def arriving(hold_for: float, turns: int, step: float = 0.0) -> list[int]:
+    """Two writes start in each of ``turns`` turns of the event loop (the clock moving ``step``
+    seconds a turn); return the writes per commit."""
+    streams, clock = Streams(), Clock(0.0)
+    writes = Writes(streams, Guard(Settings()), hold_for=hold_for, clock=clock)  # type: ignore[arg-type]
+
+    async def run() -> None:
+        started = []
+        for turn in range(turns):
+            for k in range(2):
+                body = [(f"{turn}-{k}", ["a"])]
+                started.append(asyncio.ensure_future(writes.predict(OPEN, "s", False, body)))
+            clock.advance(step)
+            await asyncio.sleep(0)
+        await asyncio.wait_for(asyncio.gather(*started), 5)
+
+    asyncio.run(run())
+    return streams.store.groups
+
+
+OPEN = Principal("open")
+
+
+def test_writes_that_keep_arriving_share_one_commit() -> None:
+    assert arriving(hold_for=1.0, turns=10) == [20]
+    # Without the wait, each turn's writes are one commit, as before the wait existed.
+    assert arriving(hold_for=0.0, turns=10) == [2] * 10
+
+
+def test_the_hold_ends_at_its_bound_though_writes_keep_arriving() -> None:
+    groups = arriving(hold_for=1.0, turns=12, step=0.25)
+    assert sum(groups) == 24 and len(groups) >= 3
+    assert max(groups) <= 2 * 5  # a hold sees the clock move 1.0 within five turns
+
+
+def test_a_lone_write_is_not_held() -> None:
+    """With a bound of a minute and a clock that never moves, a write that no other follows is
+    committed after its own turn (the test's wait_for gives it five seconds)."""
+    assert arriving(hold_for=60.0, turns=1) == [2]
+    streams = Streams()
+    writes = Writes(streams, Guard(Settings()), hold_for=60.0, clock=Clock(0.0))  # type: ignore[arg-type]
+
+    async def one() -> Any:
+        return await asyncio.wait_for(writes.predict(OPEN, "s", False, [("q", ["a"])]), 5)
+
+    assert asyncio.run(one()) == {"id": "q"}
+    assert streams.store.groups == [1]
