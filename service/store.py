@@ -13,8 +13,8 @@ numbers (assigned here) follow the order events were applied. The caller's threa
 event at once, in one transaction (a group of events is one multi-row INSERT), except while that
 thread :meth:`holds <Store.hold>` the store: the app's event loop holds it while it runs the
 requests that are ready (and, while more keep starting, a little longer: ``service.writes``),
-then :meth:`releases <Store.release>` it, so those requests share one transaction. A write from another thread first writes what a hold kept back, so positions stay
-in order in the file.
+then :meth:`releases <Store.release>` it, so those requests share one transaction. A write from
+another thread first writes what a hold kept back, so positions stay in order in the file.
 
 Durability ``full`` is SQLite's ``synchronous=FULL``, done in two steps: the transaction commits
 with ``synchronous=NORMAL`` (in WAL mode, FULL is NORMAL plus one sync of the WAL file after
