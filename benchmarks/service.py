@@ -797,16 +797,17 @@ def report(figures: Figures, args: argparse.Namespace, console: Console) -> None
         )
         unsynced = figures.normal.get(level, [])
         if unsynced:
-            loop_row("service, durability NORMAL: the same", merged(unsynced))
+            normal = merged(unsynced)
+            loop_row("service, durability NORMAL: the same", normal)
             rounds = ", ".join(
                 f"{s.rate / b.rate:.0%}" for b, s in zip(bares, unsynced, strict=False)
             )
             table.add_row(
                 f"  NORMAL / bare endpoint (rounds: {rounds})",
-                f"{merged(unsynced).rate / bare.rate:.0%}",
+                f"{normal.rate / bare.rate:.0%}",
                 "",
                 "",
-                f"{merged(unsynced).cpu_per_call / bare.cpu_per_call:.1f}x",
+                f"{normal.cpu_per_call / bare.cpu_per_call:.1f}x",
             )
     loop_row("service: single feedback", figures.feedback)
     for kind in ("predict", "feedback", "examples"):

@@ -459,6 +459,10 @@ def test_an_unexpected_failure_is_the_internal_error_on_both_paths(
 
 
 # -- holding a commit while writes keep arriving (service.writes.Writes) ------------------------
+# Group commit with a bounded wait for more writers is common practice in databases (from
+# memory: PostgreSQL's commit_delay); the rule checked here is this service's own.
+
+OPEN = Principal("open")
 
 
 class Committer:
@@ -514,9 +518,6 @@ def arriving(hold_for: float, turns: int, step: float = 0.0) -> list[int]:
 
     asyncio.run(run())
     return streams.store.groups
-
-
-OPEN = Principal("open")
 
 
 def test_writes_that_keep_arriving_share_one_commit() -> None:
